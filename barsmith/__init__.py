@@ -1,0 +1,50 @@
+"""barsmith: streaming bar builder for tick feeds.
+
+Data flows one way: a source (:mod:`barsmith.sources`) yields decoded records;
+:mod:`barsmith.ingest` validates them into ticks; :mod:`barsmith.book` keeps each
+symbol's book; :mod:`barsmith.bars` accumulates bars; :mod:`barsmith.engine` ties
+these together per ordered stream; :mod:`barsmith.runner` owns the loop and hands
+finished bars to the sinks (:mod:`barsmith.sinks`).
+"""
+
+from barsmith._version import __version__
+from barsmith.bars.bar import BAR_COLUMNS, Bar
+from barsmith.bars.spec import BarKind, BarSpec, parse_specs
+from barsmith.book.book import BookStatus, Outcome, SymbolBook
+from barsmith.engine import Engine, EngineStats
+from barsmith.errors import BarsmithError, BarSpecError, ConfigError, InputError, SinkError, StateError
+from barsmith.ingest.rejects import Reject
+from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
+from barsmith.replay import replay_files
+from barsmith.runner import Runner, RunSummary
+from barsmith.settings import Settings, load_settings
+
+__all__ = [
+    "BAR_COLUMNS",
+    "Bar",
+    "BarKind",
+    "BarSpec",
+    "BarSpecError",
+    "BarsmithError",
+    "BookStatus",
+    "ConfigError",
+    "Engine",
+    "EngineStats",
+    "InputError",
+    "MalformedTickError",
+    "Outcome",
+    "Reject",
+    "RejectReason",
+    "RunSummary",
+    "Runner",
+    "Settings",
+    "SinkError",
+    "StateError",
+    "SymbolBook",
+    "Tick",
+    "__version__",
+    "decode_tick",
+    "load_settings",
+    "parse_specs",
+    "replay_files",
+]

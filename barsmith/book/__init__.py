@@ -1,0 +1,1 @@
+"""Stage 2: per-symbol top-of-book with a live / resyncing state machine."""

@@ -1,0 +1,138 @@
+"""Per-symbol top-of-book with an explicit live / resyncing state machine.
+
+Rules (the README's "Book rules" table; tests pin every line):
+
+* A **snapshot** is always applied: it sets all four quote fields (absent = that side
+  empty), makes the book ``LIVE`` and sets the last sequence number to its own.
+* A **delta** is judged by ``seq`` against the last accepted ``last``:
+  first message ever → accepted, ``RESYNCING``; ``seq <= last`` → duplicate, dropped;
+  ``seq == last + 1`` → accepted, quotes applied if live; ``seq > last + 1`` → a gap:
+  accepted, counted, ``RESYNCING`` until the next snapshot.
+* Event time per symbol never goes backwards: a ``ts`` below the last accepted one is
+  raised to it (a counted *time regression*).
+
+Transitions::
+
+    (new) --snapshot--> LIVE        (new) --delta--> RESYNCING
+    LIVE --gap--> RESYNCING         RESYNCING --snapshot--> LIVE
+"""
+
+from __future__ import annotations
+
+import enum
+from typing import Final
+
+from barsmith.ingest.ticks import ASK_PX, ASK_QTY, BID_PX, BID_QTY, Tick
+
+
+class BookStatus(enum.Enum):
+    """Whether a book's quotes can be trusted."""
+
+    LIVE = "live"
+    RESYNCING = "resyncing"
+
+
+class Outcome(enum.Enum):
+    """What happened to one message at the book."""
+
+    ACCEPTED = "accepted"
+    GAP = "gap"  # accepted, after a sequence gap
+    DUPLICATE = "duplicate"  # dropped: seq at or below the last accepted
+
+
+_LIVE: Final = BookStatus.LIVE
+_RESYNCING: Final = BookStatus.RESYNCING
+
+
+class SymbolBook:
+    """Top of book for one symbol; :meth:`apply` runs the sequence and quote rules."""
+
+    __slots__ = (
+        "ask_px",
+        "ask_qty",
+        "bid_px",
+        "bid_qty",
+        "last_seq",
+        "last_ts",
+        "status",
+        "symbol",
+        "time_regressions",
+    )
+
+    def __init__(self, symbol: str) -> None:
+        self.symbol = symbol
+        self.status = _RESYNCING
+        self.last_seq = -1  # -1: no message accepted yet
+        self.last_ts = 0
+        self.bid_px: float | None = None
+        self.bid_qty: float | None = None
+        self.ask_px: float | None = None
+        self.ask_qty: float | None = None
+        self.time_regressions = 0
+
+    @property
+    def is_live(self) -> bool:
+        return self.status is _LIVE
+
+    def spread(self) -> float | None:
+        """ask - bid when the book is live and both prices are set, else ``None``."""
+        if self.status is _LIVE and self.bid_px is not None and self.ask_px is not None:
+            return self.ask_px - self.bid_px
+        return None
+
+    def admit(self, tick: Tick) -> Outcome:
+        """Sequence check and event-time clamp; updates ``last_seq``/``last_ts`` and the
+        status, and may raise ``tick.ts``. Quotes are applied separately by
+        :meth:`apply_quotes`, because a message's trade happens before its quote changes."""
+        seq = tick.seq
+        last = self.last_seq
+        if tick.is_snapshot:
+            outcome = Outcome.ACCEPTED
+            self.status = _LIVE
+        elif last < 0:
+            outcome = Outcome.ACCEPTED
+            self.status = _RESYNCING
+        elif seq <= last:
+            return Outcome.DUPLICATE
+        elif seq == last + 1:
+            outcome = Outcome.ACCEPTED
+        else:
+            outcome = Outcome.GAP
+            self.status = _RESYNCING
+        self.last_seq = seq
+        if tick.ts < self.last_ts:
+            tick.ts = self.last_ts
+            self.time_regressions += 1
+        else:
+            self.last_ts = tick.ts
+        return outcome
+
+    def apply_quotes(self, tick: Tick) -> None:
+        """Apply an admitted message's quote fields under the book rules."""
+        if tick.is_snapshot:
+            self.bid_px = tick.bid_px
+            self.bid_qty = tick.bid_qty
+            self.ask_px = tick.ask_px
+            self.ask_qty = tick.ask_qty
+            return
+        if self.status is not _LIVE:
+            return  # resyncing: the quote state is unknown until the next snapshot
+        present = tick.present
+        if present:
+            if present & BID_PX:
+                self.bid_px = tick.bid_px
+            if present & BID_QTY:
+                self.bid_qty = tick.bid_qty
+            if present & ASK_PX:
+                self.ask_px = tick.ask_px
+            if present & ASK_QTY:
+                self.ask_qty = tick.ask_qty
+
+    def snapshot_state(self) -> tuple[float | None, float | None, float | None]:
+        """(bid, ask, spread) as published with a bar: ``None`` unless live and set."""
+        if self.status is not _LIVE:
+            return None, None, None
+        bid = self.bid_px
+        ask = self.ask_px
+        spread = ask - bid if bid is not None and ask is not None else None
+        return bid, ask, spread

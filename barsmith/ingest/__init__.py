@@ -1,0 +1,1 @@
+"""Stage 1: bytes → decoded records (framing) → validated ticks, or counted rejects."""

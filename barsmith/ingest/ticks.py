@@ -1,0 +1,305 @@
+"""The tick wire format: one msgpack map per message, validated into a :class:`Tick`.
+
+Keys (see the README for the table): ``sym``, ``ts`` (ns since the epoch, UTC),
+``seq``, ``kind`` (``"delta"`` / ``"snapshot"``), optional ``bid_px``, ``bid_qty``,
+``ask_px``, ``ask_qty`` (a number, or nil to clear that side) and the pair
+``trade_px`` / ``trade_qty``. Unknown keys are ignored so that later formats (depth
+levels) stay readable.
+
+A record that breaks the format never raises past :func:`decode_tick`'s caller: it
+raises :class:`MalformedTickError` carrying a :class:`RejectReason`, which the engine
+counts and writes to the rejects file.
+"""
+
+from __future__ import annotations
+
+import enum
+import math
+from typing import Any, Final
+
+# Bits of Tick.present: which quote fields the message carried (a nil counts as
+# carried -- it clears that side; an absent key leaves a delta's side unchanged).
+BID_PX: Final = 1
+BID_QTY: Final = 2
+ASK_PX: Final = 4
+ASK_QTY: Final = 8
+ALL_QUOTE_FIELDS: Final = BID_PX | BID_QTY | ASK_PX | ASK_QTY
+
+MAX_SYMBOL_CHARS: Final = 64
+# Timestamps and sequence numbers are stored as signed 64-bit integers (Parquet INT64).
+MAX_INT64: Final = 2**63 - 1
+
+
+class RejectReason(enum.Enum):
+    """Why a record was not used (the value is the code written to the rejects file)."""
+
+    NOT_MSGPACK = "not_msgpack"
+    TRUNCATED = "truncated"
+    NOT_A_MAP = "not_a_map"
+    MISSING_FIELD = "missing_field"
+    WRONG_TYPE = "wrong_type"
+    BAD_VALUE = "bad_value"
+    UNKNOWN_KIND = "unknown_kind"
+    HALF_TRADE = "half_trade"
+    LATE = "late"
+
+
+class MalformedTickError(Exception):
+    """Raised by :func:`decode_tick` for a malformed record (not a BarsmithError: it is
+    data, handled by counting, never an error of the run)."""
+
+    def __init__(self, reason: RejectReason, detail: str) -> None:
+        super().__init__(f"{reason.value}: {detail}")
+        self.reason = reason
+        self.detail = detail
+
+
+class Tick:
+    """One validated message. ``bid_px`` etc. are ``None`` when nil or absent; ``present``
+    says which of the four quote keys the message carried."""
+
+    __slots__ = (
+        "ask_px",
+        "ask_qty",
+        "bid_px",
+        "bid_qty",
+        "is_snapshot",
+        "present",
+        "seq",
+        "sym",
+        "trade_px",
+        "trade_qty",
+        "ts",
+    )
+
+    def __init__(
+        self,
+        sym: str,
+        ts: int,
+        seq: int,
+        is_snapshot: bool,
+        present: int = 0,
+        bid_px: float | None = None,
+        bid_qty: float | None = None,
+        ask_px: float | None = None,
+        ask_qty: float | None = None,
+        trade_px: float | None = None,
+        trade_qty: float | None = None,
+    ) -> None:
+        self.sym = sym
+        self.ts = ts
+        self.seq = seq
+        self.is_snapshot = is_snapshot
+        self.present = present
+        self.bid_px = bid_px
+        self.bid_qty = bid_qty
+        self.ask_px = ask_px
+        self.ask_qty = ask_qty
+        self.trade_px = trade_px
+        self.trade_qty = trade_qty
+
+    def to_wire(self) -> dict[str, Any]:
+        """The message as a wire map (for recording, publishing and tests)."""
+        out: dict[str, Any] = {
+            "sym": self.sym,
+            "ts": self.ts,
+            "seq": self.seq,
+            "kind": "snapshot" if self.is_snapshot else "delta",
+        }
+        for bit, key, value in (
+            (BID_PX, "bid_px", self.bid_px),
+            (BID_QTY, "bid_qty", self.bid_qty),
+            (ASK_PX, "ask_px", self.ask_px),
+            (ASK_QTY, "ask_qty", self.ask_qty),
+        ):
+            if self.present & bit:
+                out[key] = value
+        if self.trade_px is not None:
+            out["trade_px"] = self.trade_px
+            out["trade_qty"] = self.trade_qty
+        return out
+
+    def __repr__(self) -> str:
+        return f"Tick({self.to_wire()!r})"
+
+
+_MISSING: Final[Any] = object()
+_KIND_SNAPSHOT: Final = "snapshot"
+_KIND_DELTA: Final = "delta"
+
+
+def _number(rec: dict[str, Any], key: str, value: Any, positive: bool) -> float:
+    """A finite int/float (bools are not numbers here), > 0 or >= 0."""
+    kind = type(value)
+    if kind is float:
+        number: float = value
+    elif kind is int:
+        number = float(value)
+    else:
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}: expected a number, got {kind.__name__}")
+    if not math.isfinite(number):
+        raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: not finite ({value!r})")
+    if number < 0.0 or (positive and number == 0.0):
+        limit = "> 0" if positive else ">= 0"
+        raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: must be {limit}, got {value!r}")
+    return number
+
+
+def _integer(key: str, value: Any, minimum: int) -> int:
+    if value is _MISSING:
+        raise MalformedTickError(RejectReason.MISSING_FIELD, f"{key}: required")
+    if type(value) is not int:
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}: expected an integer, got {type(value).__name__}")
+    if value < minimum or value > MAX_INT64:
+        raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: out of range ({value})")
+    number: int = value
+    return number
+
+
+def _symbol(value: Any) -> str:
+    if value is _MISSING:
+        raise MalformedTickError(RejectReason.MISSING_FIELD, "sym: required")
+    if type(value) is not str:
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"sym: expected a string, got {type(value).__name__}")
+    sym: str = value
+    if not 0 < len(sym) <= MAX_SYMBOL_CHARS or not sym.isprintable():
+        raise MalformedTickError(RejectReason.BAD_VALUE, f"sym: 1-{MAX_SYMBOL_CHARS} printable characters, got {sym!r}")
+    return sym
+
+
+def _quote(rec: dict[str, Any], key: str, positive: bool) -> tuple[bool, float | None]:
+    value = rec.get(key, _MISSING)
+    if value is _MISSING:
+        return False, None
+    if value is None:
+        return True, None
+    return True, _number(rec, key, value, positive)
+
+
+_INF: Final = math.inf
+# Symbols already seen valid: their string checks run once per symbol, not per tick.
+_VALID_SYMBOLS: set[str] = set()
+_MAX_CACHED_SYMBOLS: Final = 1_000_000
+
+
+def decode_tick(rec: Any) -> Tick:
+    """Validate one decoded msgpack object against the wire format.
+
+    Raises :class:`MalformedTickError` with the reason and a one-line detail when the
+    record is malformed; never raises anything else.
+    """
+    # Fast path for the common, well-formed message: floats for prices and
+    # quantities, nothing unusual. Anything else goes to the detailed validator,
+    # which gives the same answer for valid input and a precise reason otherwise.
+    if type(rec) is not dict:
+        return _decode_checked(rec)
+    get = rec.get
+    sym = get("sym")
+    ts = get("ts")
+    seq = get("seq")
+    kind = get("kind")
+    if (
+        sym not in _VALID_SYMBOLS
+        or type(ts) is not int
+        or type(seq) is not int
+        or not 0 < ts <= MAX_INT64
+        or not 0 <= seq <= MAX_INT64
+    ):
+        return _decode_checked(rec)
+    if kind == _KIND_DELTA:
+        is_snapshot = False
+    elif kind == _KIND_SNAPSHOT:
+        is_snapshot = True
+    else:
+        return _decode_checked(rec)
+    present = 0
+    bid_px = bid_qty = ask_px = ask_qty = trade_px = trade_qty = None
+    value = get("bid_px", _MISSING)
+    if value is not _MISSING:
+        if value is not None:
+            if type(value) is not float or not 0.0 < value < _INF:
+                return _decode_checked(rec)
+            bid_px = value
+        present = BID_PX
+    value = get("bid_qty", _MISSING)
+    if value is not _MISSING:
+        if value is not None:
+            if type(value) is not float or not 0.0 <= value < _INF:
+                return _decode_checked(rec)
+            bid_qty = value
+        present |= BID_QTY
+    value = get("ask_px", _MISSING)
+    if value is not _MISSING:
+        if value is not None:
+            if type(value) is not float or not 0.0 < value < _INF:
+                return _decode_checked(rec)
+            ask_px = value
+        present |= ASK_PX
+    value = get("ask_qty", _MISSING)
+    if value is not _MISSING:
+        if value is not None:
+            if type(value) is not float or not 0.0 <= value < _INF:
+                return _decode_checked(rec)
+            ask_qty = value
+        present |= ASK_QTY
+    value = get("trade_px")
+    if value is not None:
+        qty = get("trade_qty")
+        if type(value) is not float or type(qty) is not float or not 0.0 < value < _INF or not 0.0 < qty < _INF:
+            return _decode_checked(rec)
+        trade_px = value
+        trade_qty = qty
+    elif get("trade_qty") is not None:
+        return _decode_checked(rec)
+    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)
+
+
+def _decode_checked(rec: Any) -> Tick:
+    """The detailed validator: every check, with a precise reason on failure."""
+    if type(rec) is not dict:
+        raise MalformedTickError(RejectReason.NOT_A_MAP, f"expected a map, got {type(rec).__name__}")
+    sym = _symbol(rec.get("sym", _MISSING))
+    if len(_VALID_SYMBOLS) >= _MAX_CACHED_SYMBOLS:
+        _VALID_SYMBOLS.clear()
+    _VALID_SYMBOLS.add(sym)
+    ts = _integer("ts", rec.get("ts", _MISSING), 1)
+    seq = _integer("seq", rec.get("seq", _MISSING), 0)
+    kind = rec.get("kind", _MISSING)
+    if kind == _KIND_DELTA:
+        is_snapshot = False
+    elif kind == _KIND_SNAPSHOT:
+        is_snapshot = True
+    elif kind is _MISSING:
+        raise MalformedTickError(RejectReason.MISSING_FIELD, "kind: required")
+    elif type(kind) is str:
+        raise MalformedTickError(RejectReason.UNKNOWN_KIND, f"kind: {kind!r} is neither 'delta' nor 'snapshot'")
+    else:
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"kind: expected a string, got {type(kind).__name__}")
+
+    present = 0
+    has, bid_px = _quote(rec, "bid_px", True)
+    if has:
+        present |= BID_PX
+    has, bid_qty = _quote(rec, "bid_qty", False)
+    if has:
+        present |= BID_QTY
+    has, ask_px = _quote(rec, "ask_px", True)
+    if has:
+        present |= ASK_PX
+    has, ask_qty = _quote(rec, "ask_qty", False)
+    if has:
+        present |= ASK_QTY
+
+    raw_px = rec.get("trade_px")
+    raw_qty = rec.get("trade_qty")
+    trade_px: float | None = None
+    trade_qty: float | None = None
+    if raw_px is not None or raw_qty is not None:
+        if raw_px is None or raw_qty is None:
+            missing = "trade_qty" if raw_qty is None else "trade_px"
+            raise MalformedTickError(
+                RejectReason.HALF_TRADE, f"a trade needs both trade_px and trade_qty; {missing} is missing"
+            )
+        trade_px = _number(rec, "trade_px", raw_px, True)
+        trade_qty = _number(rec, "trade_qty", raw_qty, True)
+    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)

@@ -1,0 +1,168 @@
+"""The run loop: source → engines → sinks, owned by one :class:`Runner`.
+
+``Runner.run()`` is the synchronous entry; ``serve()`` installs signal handling,
+then ``startup()`` → ``main_loop()`` → ``shutdown()``. Signal handlers only set
+flags: the first SIGINT/SIGTERM asks for a clean stop (stop fetching, close what is
+final, flush, close), a second one ``force_exit`` skips the flush.
+
+Replay and the live service differ only in their source: a replay source ends when
+its files are drained; a live source ends when asked to stop.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import signal
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+from barsmith.bars.spec import BarSpec
+from barsmith.engine import Engine, EngineStats
+from barsmith.sinks.base import BarSink, RejectSink
+from barsmith.sources.base import RecordBatch, Source
+
+
+@dataclass(slots=True)
+class RunSummary:
+    """What a run did; printed at the end of ``barsmith replay``."""
+
+    stats: EngineStats = field(default_factory=EngineStats)
+    elapsed_s: float = 0.0
+    interrupted: bool = False
+
+    @property
+    def ticks_per_s(self) -> float:
+        return self.stats.records / self.elapsed_s if self.elapsed_s > 0 else 0.0
+
+    def lines(self) -> list[str]:
+        s = self.stats
+        rejected = sum(s.rejected.values())
+        by_reason = ", ".join(f"{k} {v:,}" for k, v in sorted(s.rejected.items())) or "none"
+        lines = [
+            f"messages read   {s.records:>14,}",
+            f"accepted        {s.accepted:>14,}",
+            f"duplicates      {s.duplicates:>14,}",
+            f"sequence gaps   {s.gaps:>14,}",
+            f"late (time bars){s.late:>14,}",
+            f"time regressions{s.time_regressions:>14,}",
+            f"rejected        {rejected:>14,}  ({by_reason})",
+        ]
+        for spec, count in s.bars.items():
+            lines.append(f"bars {spec:<11}{count:>14,}")
+        lines.append(f"elapsed         {self.elapsed_s:>14.2f} s   ({self.ticks_per_s:,.0f} ticks/s)")
+        if self.interrupted:
+            lines.append("interrupted: open bars were flushed as incomplete")
+        return lines
+
+
+ProgressHook = Callable[[Source, EngineStats, float], None]
+
+
+class Runner:
+    """Feeds one source through per-stream engines into the sinks."""
+
+    def __init__(
+        self,
+        specs: Sequence[BarSpec],
+        lateness_ns: int,
+        source: Source,
+        sinks: Sequence[BarSink],
+        reject_sink: RejectSink,
+        progress: ProgressHook | None = None,
+    ) -> None:
+        self.specs = tuple(specs)
+        self.lateness_ns = lateness_ns
+        self.source = source
+        self.sinks = tuple(sinks)
+        self.reject_sink = reject_sink
+        self.engines: dict[str, Engine] = {}
+        self.should_exit = False
+        self.force_exit = False
+        self._progress = progress
+        self._started = 0.0
+
+    # -- lifecycle -------------------------------------------------------------------
+
+    def run(self) -> RunSummary:
+        """Run to the end of the source (or a signal) and return the summary."""
+        return asyncio.run(self.serve())
+
+    async def serve(self) -> RunSummary:
+        loop = asyncio.get_running_loop()
+        installed: list[signal.Signals] = []
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                loop.add_signal_handler(sig, self.handle_exit, sig)
+                installed.append(sig)
+            except (NotImplementedError, RuntimeError):  # not the main thread
+                pass
+        try:
+            await self.startup()
+            await self.main_loop()
+            return await self.shutdown()
+        finally:
+            for sig in installed:
+                loop.remove_signal_handler(sig)
+
+    def handle_exit(self, sig: signal.Signals | None = None) -> None:
+        """Signal handler: the first call asks for a clean stop, a second forces it."""
+        if self.should_exit:
+            self.force_exit = True
+        self.should_exit = True
+        self.source.stop()
+
+    async def startup(self) -> None:
+        self._started = time.perf_counter()
+
+    async def main_loop(self) -> None:
+        async for batch in self.source.batches():
+            await self.process_batch(batch)
+            if self._progress is not None:
+                self._progress(self.source, self.total_stats(), time.perf_counter() - self._started)
+            if self.should_exit:
+                break
+
+    async def shutdown(self) -> RunSummary:
+        """Close what is final, flush the sinks, close them; in that order."""
+        if not self.force_exit:
+            for engine in self.engines.values():
+                engine.finish()
+                await self._deliver(engine)
+            for sink in self.sinks:
+                await sink.flush()
+        for sink in self.sinks:
+            await sink.close()
+        await self.reject_sink.close()
+        await self.source.close()
+        return RunSummary(self.total_stats(), time.perf_counter() - self._started, self.should_exit)
+
+    # -- work ------------------------------------------------------------------------
+
+    def engine_for(self, stream: str) -> Engine:
+        engine = self.engines.get(stream)
+        if engine is None:
+            engine = self.engines[stream] = Engine(self.specs, self.lateness_ns)
+        return engine
+
+    async def process_batch(self, batch: RecordBatch) -> None:
+        engine = self.engine_for(batch.stream)
+        for reject in batch.rejects:
+            engine.reject(reject)
+        engine.process(batch.records, batch.positions, batch.source)
+        await self._deliver(engine)
+
+    async def _deliver(self, engine: Engine) -> None:
+        bars = engine.take_bars()
+        if bars:
+            for sink in self.sinks:
+                await sink.publish(bars)
+        rejects = engine.take_rejects()
+        if rejects:
+            await self.reject_sink.write(rejects)
+
+    def total_stats(self) -> EngineStats:
+        total = EngineStats()
+        for engine in self.engines.values():
+            total.add(engine.stats)
+        return total

@@ -1,0 +1,1 @@
+"""Where bars go: Parquet files; the interface any sink implements."""

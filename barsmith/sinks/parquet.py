@@ -1,0 +1,214 @@
+"""Parquet output: bars to rolling files per spec, rejected records to ``_rejects*.parquet``.
+
+Every file is written under a hidden temporary name (``.name.parquet.tmp``), fsynced
+and renamed into place when complete, so a reader never sees a half-written file.
+Readers skip names that start with ``.`` or ``_``: ``pandas.read_parquet(DIR)``
+returns the bars alone, and the rejects sit beside them.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any, Final
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from barsmith.bars.bar import BAR_COLUMNS, Bar
+from barsmith.bars.spec import BarSpec
+from barsmith.errors import ConfigError, SinkError
+from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
+
+_TS: Final = pa.timestamp("ns", tz="UTC")
+
+BAR_SCHEMA: Final = pa.schema(
+    [
+        pa.field("symbol", pa.string(), nullable=False),
+        pa.field("spec", pa.string(), nullable=False),
+        pa.field("start", _TS, nullable=False),
+        pa.field("end", _TS, nullable=False),
+        *(pa.field(name, pa.float64()) for name in ("open", "high", "low", "close")),
+        pa.field("volume", pa.float64(), nullable=False),
+        pa.field("notional", pa.float64(), nullable=False),
+        pa.field("vwap", pa.float64()),
+        *(pa.field(name, pa.int64(), nullable=False) for name in ("trades", "messages", "gaps")),
+        *(
+            pa.field(name, pa.float64())
+            for name in ("bid_close", "ask_close", "spread_close", "spread_mean", "spread_min", "spread_max")
+        ),
+        pa.field("complete", pa.bool_(), nullable=False),
+    ]
+)
+assert tuple(BAR_SCHEMA.names) == BAR_COLUMNS
+
+REJECT_SCHEMA: Final = pa.schema(
+    [
+        pa.field("source", pa.string()),
+        pa.field("position", pa.int64()),
+        pa.field("reason", pa.string()),
+        pa.field("detail", pa.string()),
+        pa.field("symbol", pa.string()),
+        pa.field("seq", pa.int64()),
+        pa.field("ts", _TS),
+        pa.field("record", pa.binary()),
+    ]
+)
+assert tuple(REJECT_SCHEMA.names) == REJECT_COLUMNS
+
+
+def bars_table(bars: Sequence[Bar]) -> pa.Table:
+    """Bars as an Arrow table with :data:`BAR_SCHEMA`."""
+    columns = {name: [getattr(bar, name) for bar in bars] for name in BAR_COLUMNS}
+    return pa.Table.from_pydict(columns, schema=BAR_SCHEMA)
+
+
+def prepare_output_dir(path: Path, replace: bool) -> None:
+    """Create ``path``; refuse one that already holds Parquet files unless ``replace``."""
+    if path.exists() and not path.is_dir():
+        raise ConfigError(f"output path exists and is not a directory: {path}")
+    path.mkdir(parents=True, exist_ok=True)
+    existing = sorted(p for p in path.iterdir() if p.name.endswith((".parquet", ".parquet.tmp")))
+    if existing and not replace:
+        raise ConfigError(f"output directory {path} already holds {len(existing)} Parquet file(s); use --replace")
+    for old in existing:
+        old.unlink()
+
+
+class _RollingFile:
+    """One Parquet file being written under a temporary name."""
+
+    def __init__(self, final_path: Path, schema: pa.Schema, compression: str) -> None:
+        self.final_path = final_path
+        self.tmp_path = final_path.with_name(f".{final_path.name}.tmp")
+        self.writer = pq.ParquetWriter(self.tmp_path, schema, compression=compression)
+        self.rows = 0
+        self.opened_at = time.monotonic()
+
+    def write(self, table: pa.Table) -> None:
+        self.writer.write_table(table)
+        self.rows += table.num_rows
+
+    def commit(self) -> Path:
+        self.writer.close()
+        with self.tmp_path.open("rb") as handle:
+            os.fsync(handle.fileno())
+        os.replace(self.tmp_path, self.final_path)
+        _fsync_dir(self.final_path.parent)
+        return self.final_path
+
+
+def _fsync_dir(path: Path) -> None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+class ParquetBarSink:
+    """Bars to ``DIR/<spec>-<n>.parquet``; a file rolls after ``max_file_rows`` rows or
+    ``roll_interval_s`` seconds, whichever comes first."""
+
+    name = "parquet"
+
+    def __init__(
+        self,
+        directory: Path,
+        specs: Sequence[BarSpec],
+        *,
+        row_group_rows: int = 65_536,
+        max_file_rows: int = 5_000_000,
+        roll_interval_s: float | None = None,
+        compression: str = "zstd",
+        file_prefix: str = "",
+    ) -> None:
+        self.directory = directory
+        self._stems = {spec.text: spec.file_stem for spec in specs}
+        self._row_group_rows = row_group_rows
+        self._max_file_rows = max_file_rows
+        self._roll_interval_s = roll_interval_s
+        self._compression = compression
+        self._prefix = file_prefix
+        self._pending: dict[str, list[Bar]] = {text: [] for text in self._stems}
+        self._open: dict[str, _RollingFile] = {}
+        self._counter: dict[str, int] = dict.fromkeys(self._stems, 0)
+        self.files_written: list[Path] = []
+
+    async def publish(self, bars: Sequence[Bar]) -> None:
+        for bar in bars:
+            self._pending[bar.spec].append(bar)
+        for text, pending in self._pending.items():
+            if len(pending) >= self._row_group_rows:
+                self._write(text)
+        self._roll_old_files()
+
+    async def flush(self) -> None:
+        for text in self._pending:
+            self._write(text)
+        self._roll_old_files()
+
+    async def close(self) -> None:
+        await self.flush()
+        for text in list(self._open):
+            self._commit(text)
+
+    def _write(self, text: str) -> None:
+        pending = self._pending[text]
+        if not pending:
+            return
+        self._pending[text] = []
+        try:
+            handle = self._open.get(text)
+            if handle is None:
+                self._counter[text] += 1
+                name = f"{self._prefix}{self._stems[text]}-{self._counter[text]:06d}.parquet"
+                handle = self._open[text] = _RollingFile(self.directory / name, BAR_SCHEMA, self._compression)
+            handle.write(bars_table(pending))
+            if handle.rows >= self._max_file_rows:
+                self._commit(text)
+        except OSError as exc:
+            raise SinkError(f"cannot write bars to {self.directory}: {exc}") from exc
+
+    def _roll_old_files(self) -> None:
+        if self._roll_interval_s is None:
+            return
+        now = time.monotonic()
+        for text, handle in list(self._open.items()):
+            if now - handle.opened_at >= self._roll_interval_s:
+                self._commit(text)
+
+    def _commit(self, text: str) -> None:
+        handle = self._open.pop(text)
+        try:
+            self.files_written.append(handle.commit())
+        except OSError as exc:
+            raise SinkError(f"cannot finish {handle.final_path}: {exc}") from exc
+
+
+class ParquetRejectSink:
+    """Rejected records to ``DIR/_rejects.parquet`` (always written, possibly empty)."""
+
+    def __init__(self, directory: Path, file_name: str = "_rejects.parquet") -> None:
+        self.path = directory / file_name
+        self._file: _RollingFile | None = None
+        self.count = 0
+
+    async def write(self, rejects: Sequence[Reject]) -> None:
+        if not rejects:
+            return
+        if self._file is None:
+            self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
+        rows: list[dict[str, Any]] = [r.as_row() for r in rejects]
+        self._file.write(pa.Table.from_pylist(rows, schema=REJECT_SCHEMA))
+        self.count += len(rejects)
+
+    async def close(self) -> None:
+        if self._file is None:
+            self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
+        try:
+            self._file.commit()
+        except OSError as exc:
+            raise SinkError(f"cannot finish {self.path}: {exc}") from exc

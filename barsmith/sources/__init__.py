@@ -1,0 +1,1 @@
+"""Where records come from: recorded files (replay); the interface any source implements."""

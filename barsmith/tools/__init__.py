@@ -1,0 +1,1 @@
+"""Tools around the engine: the synthetic feed generator and the benchmark."""

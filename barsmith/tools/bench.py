@@ -1,0 +1,88 @@
+"""``barsmith bench``: replay throughput against plain msgpack decoding of the same bytes.
+
+Generates N ticks with the synthetic generator into a temporary file, then measures
+in one run:
+
+* decode-only: ``msgpack.Unpacker`` over the file's bytes, doing nothing else;
+* replay: ``barsmith replay`` of the same file with ``time:1m``, ``volume:…`` and
+  ``notional:…`` together, writing Parquet;
+* their ratio;
+* peak memory (max RSS) of a replay in a child process, at N/4 and at N ticks, to
+  show that memory does not grow with the number of ticks.
+
+Figures are from one run on this machine; they are not assertions.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Final
+
+import msgpack
+
+from barsmith.tools.synth import SynthConfig, write_feed
+
+BENCH_SPECS: Final = ("time:1m", "volume:20000", "notional:2e6")
+
+
+def _decode_only_rate(path: Path) -> tuple[int, float]:
+    data = path.read_bytes()
+    start = time.perf_counter()
+    unpacker = msgpack.Unpacker(raw=False, max_buffer_size=len(data) + 1)
+    unpacker.feed(data)
+    count = 0
+    for _ in unpacker:
+        count += 1
+    return count, count / (time.perf_counter() - start)
+
+
+def _replay_child(path: Path, out: Path) -> dict[str, float]:
+    """Replay in a fresh process; returns its throughput and peak RSS."""
+    code = (
+        "import json, resource, sys, time\n"
+        "from barsmith.replay import replay_files\n"
+        "t = time.perf_counter()\n"
+        f"s = replay_files([{str(path)!r}], {str(out)!r}, bars={list(BENCH_SPECS)!r}, replace=True)\n"
+        "e = time.perf_counter() - t\n"
+        "print(json.dumps({'ticks': s.stats.records, 'seconds': e, 'engine_s': s.elapsed_s,"
+        " 'rss_kib': resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))\n"
+    )
+    done = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
+    result: dict[str, float] = json.loads(done.stdout.strip().splitlines()[-1])
+    return result
+
+
+def run_bench(ticks: int, symbols: int, seed: int) -> list[str]:
+    """Run the benchmark; returns the report lines."""
+    lines = [f"barsmith bench: {ticks:,} ticks, {symbols} symbols, seed {seed}, specs {', '.join(BENCH_SPECS)}"]
+    with tempfile.TemporaryDirectory(prefix="barsmith-bench-") as tmp:
+        root = Path(tmp)
+        small_n = max(1, ticks // 4)
+        feeds = {}
+        for n in (small_n, ticks):
+            feed = root / f"feed-{n}.msgpack"
+            started = time.perf_counter()
+            write_feed(feed, SynthConfig(seed=seed, symbols=symbols, messages=n, duration_s=max(3600.0, n / 200)))
+            took = time.perf_counter() - started
+            lines.append(f"generated {n:,} ticks ({feed.stat().st_size:,} bytes) in {took:.1f} s")
+            feeds[n] = feed
+        count, decode_rate = _decode_only_rate(feeds[ticks])
+        replay = _replay_child(feeds[ticks], root / "out")
+        small = _replay_child(feeds[small_n], root / "out-small")
+        replay_rate = replay["ticks"] / replay["engine_s"]
+        lines += [
+            f"decode-only (msgpack.Unpacker) : {decode_rate:12,.0f} ticks/s",
+            f"replay, 3 specs, Parquet out   : {replay_rate:12,.0f} ticks/s"
+            f"  (incl. start-up: {replay['ticks'] / replay['seconds']:,.0f} ticks/s)",
+            f"ratio replay / decode-only     : {replay_rate / decode_rate:12.2f}",
+            f"peak RSS replaying {small_n:>11,} ticks: {small['rss_kib'] / 1024:8.1f} MiB",
+            f"peak RSS replaying {ticks:>11,} ticks: {replay['rss_kib'] / 1024:8.1f} MiB"
+            f"  (ratio {replay['rss_kib'] / small['rss_kib']:.2f})",
+        ]
+        assert count == replay["ticks"], "decode-only and replay must see the same records"
+    return lines

@@ -1,0 +1,231 @@
+"""A seeded synthetic feed for demos and benchmarks.
+
+The scenario is invented: the Kestrelmoor Exchange (venue code ``KMX``) and listings
+whose names are made-up words. Symbols differ widely in liquidity (message rates
+spread log-uniformly over three orders of magnitude); spreads are one to a few ticks;
+each symbol gets a full snapshot every ``snapshot_every_s`` of event time; a few
+messages are lost (sequence gaps) or sent twice (duplicates); arrival order jitters
+across symbols by up to ``jitter_ms`` while each symbol stays in order. Optionally a
+number of malformed records are mixed in, to exercise the rejects path.
+
+The same arguments always give the same bytes.
+"""
+
+from __future__ import annotations
+
+import gzip
+import heapq
+import math
+import random
+from collections.abc import Iterator
+from dataclasses import dataclass
+from pathlib import Path
+from typing import IO, Any, cast
+
+import msgpack
+
+VENUE = "KMX"
+_NAMES = (
+    "FENWORTH", "MARROWAY", "QUILLFERN", "BRASSWICK", "LUMENDALE", "TALLOWMERE",
+    "CORVESTRA", "DUNHOLLOW", "EMBERLOCH", "GLIMMERTON", "HAZELCROFT", "IRONVALE",
+    "JASPERGATE", "KELPMOUTH", "LARKSPIRE", "MOSSBOROUGH", "NETTLEBANK", "OAKENSHAW",
+    "PEWTERFIELD", "RUSHCOMBE", "SALTMARSH", "THISTLEWOOD", "UMBERLY", "WILLOWRAKE",
+)  # fmt: skip
+
+
+@dataclass(frozen=True, slots=True)
+class SynthConfig:
+    """Knobs of the generator; the defaults make the bundled demo feed."""
+
+    seed: int = 7
+    symbols: int = 12
+    messages: int = 250_000
+    duration_s: float = 75 * 60
+    start_ns: int = 1_798_794_000_000_000_000  # 2027-01-01 22:20:00 UTC, an invented session
+    snapshot_every_s: float = 30.0
+    trade_share: float = 0.22
+    gap_rate: float = 0.0004
+    duplicate_rate: float = 0.0006
+    jitter_ms: float = 40.0
+    malformed: int = 0
+
+
+@dataclass(slots=True)
+class _Listing:
+    symbol: str
+    rate_per_s: float
+    tick: float
+    mid_ticks: int
+    half_spread_ticks: int
+    bid_qty: float
+    ask_qty: float
+    seq: int = 0
+    last_snapshot_ns: int = -(10**18)
+    last_arrival_ns: int = 0
+    last_message: dict[str, Any] | None = None
+
+
+def _listings(cfg: SynthConfig, rng: random.Random) -> list[_Listing]:
+    if not 1 <= cfg.symbols <= len(_NAMES):
+        raise ValueError(f"symbols must be between 1 and {len(_NAMES)}")
+    # Relative activity spread log-uniformly over ~3 decades, then scaled to fit.
+    weights = [10 ** (3.0 * i / max(1, cfg.symbols - 1)) for i in range(cfg.symbols)]
+    total_rate = cfg.messages / cfg.duration_s
+    listings = []
+    for i, weight in enumerate(weights):
+        tick = rng.choice((0.01, 0.05, 0.25))
+        liquid = weight >= 30
+        listings.append(
+            _Listing(
+                symbol=f"{_NAMES[i]}.{VENUE}",
+                rate_per_s=total_rate * weight / sum(weights),
+                tick=tick,
+                mid_ticks=rng.randint(400, 40_000),
+                half_spread_ticks=1 if liquid else rng.randint(1, 2),
+                bid_qty=float(rng.randint(1, 40) * 100),
+                ask_qty=float(rng.randint(1, 40) * 100),
+            )
+        )
+    return listings
+
+
+def _px(listing: _Listing, ticks: int) -> float:
+    return round(ticks * listing.tick, 6)
+
+
+def _quote_fields(listing: _Listing) -> dict[str, Any]:
+    bid = listing.mid_ticks - listing.half_spread_ticks
+    ask = listing.mid_ticks + listing.half_spread_ticks
+    return {
+        "bid_px": _px(listing, bid),
+        "bid_qty": listing.bid_qty,
+        "ask_px": _px(listing, ask),
+        "ask_qty": listing.ask_qty,
+    }
+
+
+def _event(listing: _Listing, ts: int, cfg: SynthConfig, rng: random.Random) -> dict[str, Any]:
+    """Advance one listing by one message and return it (before loss/duplication)."""
+    listing.seq += 1
+    msg: dict[str, Any] = {"sym": listing.symbol, "ts": ts, "seq": listing.seq}
+    if ts - listing.last_snapshot_ns >= cfg.snapshot_every_s * 1e9:
+        listing.last_snapshot_ns = ts
+        msg["kind"] = "snapshot"
+        msg.update(_quote_fields(listing))
+        return msg
+    msg["kind"] = "delta"
+    roll = rng.random()
+    if roll < cfg.trade_share:
+        buy = rng.random() < 0.5
+        side_qty = listing.ask_qty if buy else listing.bid_qty
+        qty = float(rng.choice((1, 5, 10, 25, 50, 100, 100, 200, 300, 500)))
+        qty = min(qty, side_qty) if side_qty > 0 else qty
+        px_ticks = listing.mid_ticks + (listing.half_spread_ticks if buy else -listing.half_spread_ticks)
+        msg["trade_px"] = _px(listing, px_ticks)
+        msg["trade_qty"] = qty
+        # The trade consumes liquidity at the touch, in the same message.
+        if buy:
+            listing.ask_qty = max(0.0, listing.ask_qty - qty) or float(rng.randint(1, 30) * 100)
+            msg["ask_qty"] = listing.ask_qty
+        else:
+            listing.bid_qty = max(0.0, listing.bid_qty - qty) or float(rng.randint(1, 30) * 100)
+            msg["bid_qty"] = listing.bid_qty
+    elif roll < 0.45:
+        # The mid moves by a tick; both sides re-quote.
+        listing.mid_ticks = max(listing.half_spread_ticks + 5, listing.mid_ticks + rng.choice((-1, 1)))
+        if rng.random() < 0.1:
+            listing.half_spread_ticks = rng.randint(1, 3)
+        listing.bid_qty = float(rng.randint(1, 40) * 100)
+        listing.ask_qty = float(rng.randint(1, 40) * 100)
+        msg.update(_quote_fields(listing))
+    elif roll < 0.73:
+        listing.bid_qty = float(rng.randint(0, 40) * 100)
+        msg["bid_qty"] = listing.bid_qty
+    else:
+        listing.ask_qty = float(rng.randint(0, 40) * 100)
+        msg["ask_qty"] = listing.ask_qty
+    return msg
+
+
+def generate(cfg: SynthConfig) -> Iterator[dict[str, Any]]:
+    """Yield ``cfg.messages`` tick maps in arrival order (valid ticks only)."""
+    rng = random.Random(cfg.seed)
+    listings = _listings(cfg, rng)
+    # Min-heap of (arrival ns, event ns, index); each symbol's next event.
+    pending: list[tuple[int, int, int]] = []
+    clocks = [cfg.start_ns] * len(listings)
+
+    def schedule(i: int) -> None:
+        gap_ns = int(rng.expovariate(listings[i].rate_per_s) * 1e9) + 1
+        clocks[i] += gap_ns
+        arrival = max(listings[i].last_arrival_ns, clocks[i] + int(rng.random() * cfg.jitter_ms * 1e6))
+        listings[i].last_arrival_ns = arrival
+        heapq.heappush(pending, (arrival, clocks[i], i))
+
+    for i in range(len(listings)):
+        schedule(i)
+    emitted = 0
+    while emitted < cfg.messages:
+        _, ts, i = heapq.heappop(pending)
+        schedule(i)
+        listing = listings[i]
+        msg = _event(listing, ts, cfg, rng)
+        roll = rng.random()
+        if roll < cfg.gap_rate and msg["kind"] == "delta":
+            continue  # lost on the way: the receiver sees a sequence gap
+        yield msg
+        emitted += 1
+        if roll > 1.0 - cfg.duplicate_rate and emitted < cfg.messages:
+            yield dict(msg)  # sent twice
+            emitted += 1
+
+
+def _malformed_records(rng: random.Random, template: dict[str, Any]) -> list[bytes]:
+    bad: list[Any] = [
+        {**template, "ts": "yesterday"},
+        {**template, "kind": "refresh"},
+        {k: v for k, v in template.items() if k != "seq"},
+        {**template, "trade_px": 10.5},
+        {**template, "bid_px": -1.0},
+        {**template, "ask_px": math.inf},
+        ["not", "a", "tick"],
+    ]
+    out = [msgpack.packb(rec, use_bin_type=True) for rec in bad]
+    out.append(b"\xc1\xc1 garbage that is not msgpack \xc1")
+    rng.shuffle(out)
+    return out
+
+
+def feed_bytes(cfg: SynthConfig) -> Iterator[bytes]:
+    """The encoded feed, record by record, with ``cfg.malformed`` bad records mixed in."""
+    rng = random.Random(cfg.seed + 1)
+    packer = msgpack.Packer(use_bin_type=True)
+    positions = set(rng.sample(range(1, cfg.messages), min(cfg.malformed, max(0, cfg.messages - 1))))
+    spare: list[bytes] = []
+    for n, msg in enumerate(generate(cfg)):
+        if n in positions:
+            if not spare:
+                spare = _malformed_records(rng, msg)
+            yield spare.pop()
+        yield packer.pack(msg)
+
+
+def write_feed(path: Path, cfg: SynthConfig) -> int:
+    """Write the feed to ``path`` (gzip when it ends in ``.gz``); returns the uncompressed size."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    written = 0
+    with path.open("wb") as raw:
+        handle: IO[bytes] = raw
+        if path.suffix == ".gz":
+            # mtime=0 and no file name keep the compressed bytes reproducible.
+            handle = cast(IO[bytes], gzip.GzipFile(filename="", mode="wb", fileobj=raw, mtime=0, compresslevel=9))
+        chunk: list[bytes] = []
+        for record in feed_bytes(cfg):
+            chunk.append(record)
+            if len(chunk) >= 8192:
+                written += handle.write(b"".join(chunk))
+                chunk = []
+        written += handle.write(b"".join(chunk))
+        if handle is not raw:
+            handle.close()
+    return written
