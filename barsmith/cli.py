@@ -71,6 +71,13 @@ def build_parser() -> argparse.ArgumentParser:
     synth.add_argument("--malformed", type=int, default=0, metavar="N", help="mix in N malformed records")
     synth.set_defaults(handler=_cmd_synth)
 
+    show = commands.add_parser("show", help="print bars from a Parquet output directory")
+    show.add_argument("dir", type=Path, metavar="DIR")
+    show.add_argument("--spec", help="only this bar spec")
+    show.add_argument("--symbol", help="only this symbol")
+    show.add_argument("--rows", type=_positive_int, default=10, help="how many bars (default 10)")
+    show.set_defaults(handler=_cmd_show)
+
     bench = commands.add_parser("bench", help="measure replay throughput against msgpack decoding")
     bench.add_argument("--ticks", type=_positive_int, default=2_000_000)
     bench.add_argument("--symbols", type=_positive_int, default=20)
@@ -116,6 +123,24 @@ def _cmd_synth(args: argparse.Namespace) -> int:
     )
     size = write_feed(args.out, cfg)
     print(f"wrote {args.messages:,} messages ({size:,} bytes uncompressed) to {args.out}", file=sys.stderr)
+    return EXIT_OK
+
+
+def _cmd_show(args: argparse.Namespace) -> int:
+    import pandas as pd
+
+    if not args.dir.is_dir():
+        raise ConfigError(f"not a directory: {args.dir}")
+    frame = pd.read_parquet(args.dir).sort_values(["start", "symbol", "spec"], kind="stable")
+    if args.spec is not None:
+        frame = frame[frame["spec"] == args.spec]
+    if args.symbol is not None:
+        frame = frame[frame["symbol"] == args.symbol]
+    columns = ["symbol", "spec", "start", "end", "open", "high", "low", "close", "volume", "vwap", "trades"]
+    columns += ["spread_mean", "complete"]
+    with pd.option_context("display.width", 200, "display.max_columns", 20):
+        print(f"{len(frame):,} bars in {args.dir}; the first {min(args.rows, len(frame))}:")
+        print(frame[columns].head(args.rows).to_string(index=False))
     return EXIT_OK
 
 

@@ -101,8 +101,12 @@ def load_settings(config_file: str | os.PathLike[str] | None = None, **overrides
 
 
 def format_validation_error(exc: ValidationError) -> str:
+    """One line for one problem; otherwise a heading and one line per problem."""
     problems = []
     for error in exc.errors():
         where = ".".join(str(p) for p in error["loc"]) or "settings"
-        problems.append(f"  - {where}: {error['msg']}")
-    return "invalid settings:\n" + "\n".join(problems)
+        message = str(error["msg"]).removeprefix("Value error, ")
+        problems.append(f"{where}: {message}")
+    if len(problems) == 1:
+        return problems[0]
+    return f"{len(problems)} problems in the settings:\n" + "\n".join(f"  - {p}" for p in problems)

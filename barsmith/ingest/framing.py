@@ -74,6 +74,7 @@ class FrameReader:
         self._block_bytes = block_bytes
         self._unpacker = new_unpacker()
         self._base = 0  # absolute offset of the unpacker's position 0
+        self._next_start = 0  # absolute offset where the next record starts
         self._fed_end = 0  # absolute offset just past the last byte fed
         self._blocks: list[tuple[int, bytes]] = []  # fed blocks not yet wholly consumed
         self._eof = False
@@ -99,19 +100,20 @@ class FrameReader:
         while len(objects) < max_records and not self._done:
             unpacker = self._unpacker
             base = self._base
-            pos = unpacker.tell()
             try:
-                # Hot loop: one append pair per record; offsets are where each record starts.
+                # Hot loop: one append pair per record. The unpacker resumes partial
+                # records across feeds and its tell() then counts the partly parsed
+                # bytes, so a record's start is tracked here, after each whole record.
                 for obj in unpacker:
                     objects.append(obj)
-                    offsets.append(base + pos)
-                    pos = unpacker.tell()
+                    offsets.append(self._next_start)
+                    self._next_start = base + unpacker.tell()
                     if len(objects) >= max_records:
                         break
                 else:
-                    self._feed_or_finish(base + pos, rejects)
+                    self._feed_or_finish(self._next_start, rejects)
             except _DECODE_ERRORS as exc:
-                self._resync(base + pos, f"{type(exc).__name__}: {exc}", rejects)
+                self._resync(self._next_start, f"{type(exc).__name__}: {exc}", rejects)
         return objects, offsets, rejects
 
     # -- buffering -------------------------------------------------------------------
@@ -139,6 +141,7 @@ class FrameReader:
         """Start a fresh unpacker at absolute ``offset`` holding ``data`` (bytes from there)."""
         self._unpacker = new_unpacker()
         self._base = offset
+        self._next_start = offset
         self._blocks = [(offset, data)] if data else []
         if data:
             self._unpacker.feed(data)

@@ -17,7 +17,8 @@ from barsmith.ingest.ticks import RejectReason
 from barsmith.sources.base import RecordBatch
 
 GZIP_MAGIC: Final = b"\x1f\x8b"
-BATCH_RECORDS: Final = 16_384
+# Small batches keep freshly decoded records in cache while the engine uses them.
+BATCH_RECORDS: Final = 1_024
 REPLAY_STREAM: Final = "replay"
 
 

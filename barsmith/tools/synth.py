@@ -41,7 +41,7 @@ class SynthConfig:
     symbols: int = 12
     messages: int = 250_000
     duration_s: float = 75 * 60
-    start_ns: int = 1_798_794_000_000_000_000  # 2027-01-01 22:20:00 UTC, an invented session
+    start_ns: int = 1_798_794_000_000_000_000  # 2027-01-01 09:00:00 UTC, an invented session
     snapshot_every_s: float = 30.0
     trade_share: float = 0.22
     gap_rate: float = 0.0004

@@ -1,0 +1,50 @@
+"""Factories for tests: wire-format ticks, an engine runner, recorded feed files."""
+
+from __future__ import annotations
+
+import gzip
+from collections.abc import Iterable, Sequence
+from pathlib import Path
+from typing import Any
+
+import msgpack
+
+from barsmith.bars.bar import Bar
+from barsmith.bars.spec import parse_specs
+from barsmith.engine import Engine
+
+T0 = 1_798_794_000_000_000_000  # 2027-01-01 09:00 UTC, an invented session start
+S = 1_000_000_000  # one second in ns
+MS = 1_000_000
+
+
+def tick(sym: str = "FENWORTH.KMX", ts: int = T0, seq: int = 1, kind: str = "delta", **fields: Any) -> dict[str, Any]:
+    """A wire-format tick map; extra keyword arguments become fields as given."""
+    return {"sym": sym, "ts": ts, "seq": seq, "kind": kind, **fields}
+
+
+def snap(sym: str = "FENWORTH.KMX", ts: int = T0, seq: int = 1, **quotes: Any) -> dict[str, Any]:
+    return tick(sym, ts, seq, "snapshot", **quotes)
+
+
+def trade(sym: str, ts: int, seq: int, px: float, qty: float, **fields: Any) -> dict[str, Any]:
+    return tick(sym, ts, seq, "delta", trade_px=px, trade_qty=qty, **fields)
+
+
+def run_engine(
+    records: Sequence[Any], specs: Sequence[str] = ("time:1m",), lateness_ns: int = 0, finish: bool = True
+) -> tuple[list[Bar], Engine]:
+    """Feed records through one engine; returns (bars in emission order, engine)."""
+    engine = Engine(parse_specs(list(specs)), lateness_ns)
+    engine.process(list(records), list(range(len(records))), "test")
+    bars = engine.take_bars()
+    if finish:
+        engine.finish()
+        bars += engine.take_bars()
+    return bars, engine
+
+
+def write_records(path: Path, records: Iterable[Any], compress: bool = False) -> Path:
+    data = b"".join(msgpack.packb(r, use_bin_type=True) for r in records)
+    path.write_bytes(gzip.compress(data) if compress else data)
+    return path
