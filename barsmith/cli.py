@@ -15,6 +15,7 @@ from typing import NoReturn
 
 from barsmith import __version__
 from barsmith.errors import BarsmithError, ConfigError
+from barsmith.settings import KafkaSettings
 from barsmith.units import parse_duration_ns
 
 EXIT_OK = 0
@@ -59,6 +60,9 @@ def build_parser() -> argparse.ArgumentParser:
     replay.add_argument("--lateness", type=_duration_ms, metavar="DUR", help="allowed lateness (default 2s)")
     replay.add_argument("--config", metavar="FILE", help="TOML settings file")
     replay.add_argument("--replace", action="store_true", help="replace Parquet files already in --out")
+    replay.add_argument(
+        "--partitions", type=_positive_int, default=1, metavar="N", help="build per bus partition, as `run` does"
+    )
     replay.add_argument("--quiet", action="store_true", help="no progress bar and no summary")
     replay.set_defaults(handler=_cmd_replay)
 
@@ -77,6 +81,45 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("--symbol", help="only this symbol")
     show.add_argument("--rows", type=_positive_int, default=10, help="how many bars (default 10)")
     show.set_defaults(handler=_cmd_show)
+
+    run = commands.add_parser("run", help="run the live service on Kafka")
+    run.add_argument("--config", metavar="FILE", help="TOML settings file")
+    run.add_argument("--bootstrap", metavar="HOST:PORT[,...]", help="Kafka bootstrap servers")
+    run.add_argument("--input-topic", action="append", metavar="TOPIC", help="input topic, repeatable")
+    run.add_argument("--output-topic", metavar="TOPIC", help="bus sink: publish bars here")
+    run.add_argument("--group", metavar="ID", help="consumer group id")
+    run.add_argument("--client-id", metavar="ID")
+    run.add_argument("--bars", action="append", metavar="SPEC", help="bar spec, repeatable")
+    run.add_argument("--lateness", type=_duration_ms, metavar="DUR")
+    run.add_argument("--idle-close", type=_duration_ms, metavar="DUR", help="idle rule delay (default 10s)")
+    run.add_argument("--parquet-dir", type=Path, metavar="DIR", help="Parquet sink: write bars here")
+    run.add_argument("--metrics-port", type=int, metavar="PORT", help="HTTP port for /metrics (0: any free)")
+    run.add_argument("--workers", type=_positive_int, metavar="N", help="processes in the group on this host")
+    run.add_argument("--exit-when-idle", type=_duration_ms, metavar="DUR", help="drain mode: exit after DUR idle")
+    run.add_argument("--log-json", action="store_true", default=None, help="log lines as JSON")
+    run.set_defaults(handler=_cmd_run)
+
+    publish = commands.add_parser("publish", help="publish a recorded feed to a topic, keyed by symbol")
+    publish.add_argument("files", nargs="+", type=Path, metavar="FILE")
+    publish.add_argument("--bootstrap", required=True, metavar="HOST:PORT[,...]")
+    publish.add_argument("--topic", required=True)
+    publish.add_argument("--partitions", type=_positive_int, default=8, help="partitions if the topic is created")
+    publish.add_argument("--speed", type=float, metavar="X", help="pace at X times event time (1 = real time)")
+    publish.add_argument("--batch", type=_positive_int, default=1, metavar="N", help="ticks per record (arrays)")
+    publish.set_defaults(handler=_cmd_publish)
+
+    record = commands.add_parser("record", help="capture a topic to a replayable file")
+    record.add_argument("--bootstrap", required=True, metavar="HOST:PORT[,...]")
+    record.add_argument("--topic", required=True)
+    record.add_argument("--out", required=True, type=Path, metavar="FILE")
+    record.add_argument("--idle", type=_duration_ms, default=5000, metavar="DUR", help="stop after DUR without data")
+    record.set_defaults(handler=_cmd_record)
+
+    config = commands.add_parser("config", help="inspect settings")
+    config_commands = config.add_subparsers(dest="config_command", required=True, parser_class=_Parser)
+    check = config_commands.add_parser("check", help="print the effective settings (secrets masked)")
+    check.add_argument("file", nargs="?", metavar="FILE", help="TOML settings file")
+    check.set_defaults(handler=_cmd_config_check)
 
     bench = commands.add_parser("bench", help="measure replay throughput against msgpack decoding")
     bench.add_argument("--ticks", type=_positive_int, default=2_000_000)
@@ -98,6 +141,7 @@ def _cmd_replay(args: argparse.Namespace) -> int:
         bars=args.bars,
         lateness_ms=args.lateness,
         replace=args.replace,
+        partitions=args.partitions,
         progress=progress,
     )
     if progress is not None:
@@ -107,6 +151,115 @@ def _cmd_replay(args: argparse.Namespace) -> int:
             print(line, file=sys.stderr)
         print(f"bars written to {args.out}", file=sys.stderr)
     return EXIT_INTERRUPTED if summary.interrupted else EXIT_OK
+
+
+def _service_overrides(args: argparse.Namespace) -> dict[str, object]:
+    """CLI flags as nested settings overrides (None = not given)."""
+    kafka: dict[str, object] = {}
+    if args.bootstrap:
+        kafka["bootstrap_servers"] = [s.strip() for s in args.bootstrap.split(",") if s.strip()]
+    if args.input_topic:
+        kafka["input_topics"] = args.input_topic
+    for key, value in (("output_topic", args.output_topic), ("group_id", args.group), ("client_id", args.client_id)):
+        if value is not None:
+            kafka[key] = value
+    service: dict[str, object] = {}
+    if args.idle_close is not None:
+        service["idle_close_s"] = args.idle_close / 1000.0
+    if args.workers is not None:
+        service["workers"] = args.workers
+    if args.exit_when_idle is not None:
+        service["exit_when_idle_s"] = args.exit_when_idle / 1000.0
+    if args.log_json:
+        service["log_json"] = True
+    return {
+        "bars": args.bars,
+        "lateness_ms": args.lateness,
+        "kafka": kafka or None,
+        "service": service or None,
+        "parquet": {"dir": args.parquet_dir} if args.parquet_dir is not None else None,
+        "metrics": {"port": args.metrics_port} if args.metrics_port is not None else None,
+    }
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from barsmith.service.app import configure_logging, run_service, run_workers
+    from barsmith.settings import load_settings
+
+    settings = load_settings(args.config, **_service_overrides(args))
+    configure_logging(settings.service.log_json)
+    if settings.service.workers > 1:
+        argv = [a for a in (sys.argv[1:] if args.argv is None else args.argv)]
+        return run_workers(settings, _strip_workers(argv))
+    summary = run_service(settings)
+    for line in summary.lines():
+        print(line, file=sys.stderr)
+    return EXIT_OK
+
+
+def _strip_workers(argv: list[str]) -> list[str]:
+    out: list[str] = []
+    skip = False
+    for arg in argv:
+        if skip:
+            skip = False
+            continue
+        if arg == "--workers":
+            skip = True
+            continue
+        if arg.startswith("--workers="):
+            continue
+        out.append(arg)
+    return out
+
+
+def _kafka_for(bootstrap: str) -> KafkaSettings:
+    from barsmith.settings import load_settings
+
+    settings = load_settings(kafka={"bootstrap_servers": [s.strip() for s in bootstrap.split(",") if s.strip()]})
+    return settings.kafka
+
+
+def _cmd_publish(args: argparse.Namespace) -> int:
+    import asyncio
+
+    from barsmith.sources.files import check_input_paths
+    from barsmith.tools.bus import publish_feed
+
+    if args.speed is not None and args.speed <= 0:
+        raise ConfigError("--speed must be > 0")
+    files = check_input_paths(args.files)
+    summary = asyncio.run(
+        publish_feed(files, _kafka_for(args.bootstrap), args.topic, args.partitions, args.speed, args.batch)
+    )
+    print(
+        f"published {summary.ticks:,} ticks in {summary.records:,} records to {args.topic} "
+        f"in {summary.seconds:.1f} s ({summary.skipped} unreadable span(s) skipped)",
+        file=sys.stderr,
+    )
+    return EXIT_OK
+
+
+def _cmd_record(args: argparse.Namespace) -> int:
+    import asyncio
+
+    from barsmith.tools.bus import record_topic
+
+    count = asyncio.run(record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0))
+    print(f"recorded {count:,} records from {args.topic} to {args.out}", file=sys.stderr)
+    return EXIT_OK
+
+
+def _cmd_config_check(args: argparse.Namespace) -> int:
+    import json
+
+    from barsmith.settings import load_settings
+
+    settings = load_settings(args.file)
+    settings.bar_specs()
+    print(json.dumps(settings.masked(), indent=2, default=str))
+    print("settings are valid", file=sys.stderr)
+    return EXIT_OK
 
 
 def _cmd_synth(args: argparse.Namespace) -> int:
@@ -155,6 +308,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``barsmith`` console script; returns the exit status."""
     args = build_parser().parse_args(argv)
+    args.argv = list(argv) if argv is not None else None
     handler: Callable[[argparse.Namespace], int] = args.handler
     try:
         return handler(args)

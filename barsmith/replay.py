@@ -20,17 +20,19 @@ def replay_files(
     bars: Sequence[str] | None = None,
     lateness_ms: int | None = None,
     replace: bool = False,
+    partitions: int = 1,
     progress: ProgressHook | None = None,
 ) -> RunSummary:
     """Replay ``files`` (in order, as one stream) into Parquet under ``out_dir``.
 
     Bars go to ``<spec>-<n>.parquet`` files (``pandas.read_parquet(out_dir)`` reads
-    them all) and rejected records to ``_rejects.parquet``. Raises
+    them all) and rejected records to ``_rejects.parquet``. ``partitions > 1`` builds
+    bars per bus partition, as the live service does. Raises
     :class:`~barsmith.errors.ConfigError` for bad settings, specs or paths.
     """
     settings = load_settings(config_file, bars=list(bars) if bars is not None else None, lateness_ms=lateness_ms)
     specs = settings.bar_specs()
-    source = FileSource(files)
+    source = FileSource(files, partitions=partitions)
     out = Path(out_dir)
     prepare_output_dir(out, replace)
     pq_settings = settings.parquet

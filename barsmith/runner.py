@@ -12,6 +12,7 @@ its files are drained; a live source ends when asked to stop.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import signal
 import time
 from collections.abc import Callable, Sequence
@@ -70,6 +71,7 @@ class Runner:
         sinks: Sequence[BarSink],
         reject_sink: RejectSink,
         progress: ProgressHook | None = None,
+        housekeeping_interval_s: float | None = None,
     ) -> None:
         self.specs = tuple(specs)
         self.lateness_ns = lateness_ns
@@ -81,6 +83,10 @@ class Runner:
         self.force_exit = False
         self._progress = progress
         self._started = 0.0
+        self._housekeeping_interval_s = housekeeping_interval_s
+        self._next_housekeeping = 0.0
+        # Called on a second signal; the CLI makes it exit the process at once.
+        self.on_force_exit: Callable[[], None] | None = None
 
     # -- lifecycle -------------------------------------------------------------------
 
@@ -98,8 +104,12 @@ class Runner:
             except (NotImplementedError, RuntimeError):  # not the main thread
                 pass
         try:
-            await self.startup()
-            await self.main_loop()
+            try:
+                await self.startup()
+                await self.main_loop()
+            except BaseException:
+                await self.abort()
+                raise
             return await self.shutdown()
         finally:
             for sig in installed:
@@ -109,6 +119,8 @@ class Runner:
         """Signal handler: the first call asks for a clean stop, a second forces it."""
         if self.should_exit:
             self.force_exit = True
+            if self.on_force_exit is not None:
+                self.on_force_exit()
         self.should_exit = True
         self.source.stop()
 
@@ -116,12 +128,30 @@ class Runner:
         self._started = time.perf_counter()
 
     async def main_loop(self) -> None:
+        interval = self._housekeeping_interval_s
         async for batch in self.source.batches():
-            await self.process_batch(batch)
+            if batch.records or batch.rejects:
+                await self.process_batch(batch)
+            if interval is not None:
+                # Periodic jobs hang off this one tick, each gated by when it last ran.
+                now = time.monotonic()
+                if now >= self._next_housekeeping:
+                    self._next_housekeeping = now + interval
+                    await self.housekeeping(now)
             if self._progress is not None:
                 self._progress(self.source, self.total_stats(), time.perf_counter() - self._started)
             if self.should_exit:
                 break
+
+    async def abort(self) -> None:
+        """After a failure: close everything without flushing, ignoring further errors."""
+        for closer in [*(sink.close for sink in self.sinks), self.reject_sink.close, self.source.close]:
+            # Best effort: the original error is the one that matters.
+            with contextlib.suppress(Exception):
+                await closer()
+
+    async def housekeeping(self, now: float) -> None:
+        """Periodic work between batches (idle rule, commits, drain mode); none in replay."""
 
     async def shutdown(self) -> RunSummary:
         """Close what is final, flush the sinks, close them; in that order."""
@@ -150,6 +180,10 @@ class Runner:
         for reject in batch.rejects:
             engine.reject(reject)
         engine.process(batch.records, batch.positions, batch.source)
+        await self._deliver(engine)
+
+    async def deliver(self, engine: Engine) -> None:
+        """Hand an engine's finished bars and rejects to the sinks."""
         await self._deliver(engine)
 
     async def _deliver(self, engine: Engine) -> None:

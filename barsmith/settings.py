@@ -12,7 +12,7 @@ import os
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator
+from pydantic import BaseModel, ConfigDict, Field, SecretStr, ValidationError, field_validator, model_validator
 from pydantic_settings import (
     BaseSettings,
     PydanticBaseSettingsSource,
@@ -36,6 +36,71 @@ class ParquetSettings(BaseModel):
     compression: Literal["zstd", "snappy", "gzip", "none"] = "zstd"
 
 
+class SecuritySettings(BaseModel):
+    """How to reach the Kafka brokers. Secrets are never printed."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    protocol: Literal["PLAINTEXT", "SSL", "SASL_PLAINTEXT", "SASL_SSL"] = "PLAINTEXT"
+    sasl_mechanism: Literal["PLAIN", "SCRAM-SHA-256", "SCRAM-SHA-512"] | None = None
+    sasl_username: str | None = None
+    sasl_password: SecretStr | None = None
+    ssl_cafile: Path | None = None
+    ssl_certfile: Path | None = None
+    ssl_keyfile: Path | None = None
+    ssl_key_password: SecretStr | None = None
+
+    @model_validator(mode="after")
+    def _sasl_needs_credentials(self) -> SecuritySettings:
+        if self.protocol.startswith("SASL"):
+            if self.sasl_mechanism is None:
+                raise ValueError(f"protocol {self.protocol} needs sasl_mechanism")
+            if not self.sasl_username or self.sasl_password is None:
+                raise ValueError(f"protocol {self.protocol} needs sasl_username and sasl_password")
+        return self
+
+
+class KafkaSettings(BaseModel):
+    """The bus: where ticks come from and bars go."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    bootstrap_servers: list[str] = Field(default_factory=lambda: ["127.0.0.1:19092"])
+    input_topics: list[str] = Field(default_factory=lambda: ["ticks"])
+    output_topic: str | None = Field(None, description="bus sink: active when set")
+    output_partitions: int = Field(8, gt=0, description="partitions if the service creates the output topic")
+    group_id: str = "barsmith"
+    client_id: str = "barsmith"
+    fetch_max_records: int = Field(4_096, gt=0, description="records per poll")
+    poll_timeout_ms: int = Field(200, gt=0, le=10_000)
+    commit_interval_s: float = Field(5.0, gt=0)
+    output_compression: Literal["zstd", "lz4", "gzip", "none"] = "zstd"
+    output_linger_ms: int = Field(5, ge=0, le=10_000)
+    security: SecuritySettings = Field(default_factory=SecuritySettings)
+
+
+class MetricsSettings(BaseModel):
+    """The HTTP endpoint with /metrics, /healthz and /readyz."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    host: str = "127.0.0.1"
+    port: int | None = Field(9464, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
+
+
+class ServiceSettings(BaseModel):
+    """The long-running daemon's behaviour."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    idle_close_s: float = Field(10.0, gt=0, description="idle rule: see README")
+    shutdown_timeout_s: float = Field(20.0, gt=0)
+    housekeeping_interval_s: float = Field(0.5, gt=0)
+    exit_when_idle_s: float | None = Field(None, gt=0, description="drain mode: exit after this long with no input")
+    workers: int = Field(1, ge=1, le=64)
+    log_json: bool = False
+
+
 class Settings(BaseSettings):
     """Every setting barsmith reads; units are in the names."""
 
@@ -46,6 +111,9 @@ class Settings(BaseSettings):
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
     lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
     parquet: ParquetSettings = Field(default_factory=ParquetSettings)
+    kafka: KafkaSettings = Field(default_factory=KafkaSettings)
+    metrics: MetricsSettings = Field(default_factory=MetricsSettings)
+    service: ServiceSettings = Field(default_factory=ServiceSettings)
 
     @field_validator("bars")
     @classmethod
@@ -62,6 +130,11 @@ class Settings(BaseSettings):
     @property
     def lateness_ns(self) -> int:
         return self.lateness_ms * 1_000_000
+
+    def masked(self) -> dict[str, Any]:
+        """The effective settings as plain data, secrets shown as ``**********``."""
+        data: dict[str, Any] = self.model_dump(mode="json")
+        return data
 
     @classmethod
     def settings_customise_sources(
@@ -85,7 +158,9 @@ _TOML_FILE: dict[str, Path | None] = {"path": None}
 
 def load_settings(config_file: str | os.PathLike[str] | None = None, **overrides: Any) -> Settings:
     """Build settings from an optional TOML file, the environment and CLI overrides
-    (``None`` overrides are ignored). Raises :class:`ConfigError` listing every problem."""
+    (``None`` overrides are ignored; nested sections are given as dicts and merged
+    into the file's and environment's values). Raises :class:`ConfigError` listing
+    every problem."""
     path = Path(config_file) if config_file is not None else None
     if path is not None and not path.is_file():
         raise ConfigError(f"config file not found: {path}")

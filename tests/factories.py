@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gzip
+import socket
 from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import Any
@@ -48,3 +49,18 @@ def write_records(path: Path, records: Iterable[Any], compress: bool = False) ->
     data = b"".join(msgpack.packb(r, use_bin_type=True) for r in records)
     path.write_bytes(gzip.compress(data) if compress else data)
     return path
+
+
+def free_port_pair() -> int:
+    """A free loopback TCP port whose successor is free too (broker + controller, or two workers)."""
+    for _ in range(50):
+        with socket.socket() as first:
+            first.bind(("127.0.0.1", 0))
+            port = int(first.getsockname()[1])
+        with socket.socket() as second:
+            try:
+                second.bind(("127.0.0.1", port + 1))
+            except OSError:
+                continue
+        return port
+    raise RuntimeError("no free port pair on 127.0.0.1")

@@ -8,13 +8,14 @@ import os
 import zlib
 from collections.abc import AsyncIterator, Sequence
 from pathlib import Path
-from typing import IO, Final, cast
+from typing import IO, Any, Final, cast
 
 from barsmith.errors import ConfigError, InputError
 from barsmith.ingest.framing import FrameReader, FramingReject
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
 from barsmith.sources.base import RecordBatch
+from barsmith.sources.partitioning import partition_for, symbol_of
 
 GZIP_MAGIC: Final = b"\x1f\x8b"
 # Small batches keep freshly decoded records in cache while the engine uses them.
@@ -50,8 +51,15 @@ def open_feed(path: Path) -> tuple[IO[bytes], IO[bytes]]:
 class FileSource:
     """Replays recorded files as one ordered stream, then ends."""
 
-    def __init__(self, paths: Sequence[str | os.PathLike[str]], batch_records: int = BATCH_RECORDS) -> None:
+    def __init__(
+        self, paths: Sequence[str | os.PathLike[str]], batch_records: int = BATCH_RECORDS, partitions: int = 1
+    ) -> None:
+        """``partitions > 1`` splits the stream by symbol the way the bus does (see
+        :mod:`barsmith.sources.partitioning`): one ordered stream per partition."""
+        if partitions < 1:
+            raise ConfigError(f"partitions must be >= 1, got {partitions}")
         self.paths = check_input_paths(paths)
+        self._partitions = partitions
         self._batch_records = batch_records
         self._total_bytes = sum(p.stat().st_size for p in self.paths)
         self._done_bytes = 0
@@ -90,13 +98,32 @@ class FileSource:
                         raise InputError(f"cannot read {path}: {exc.strerror or exc}") from exc
                     self._done_bytes = finished_bytes + raw.tell()
                     if records or framing:
-                        yield RecordBatch(
-                            REPLAY_STREAM, source, records, positions, [_as_reject(source, f) for f in framing]
-                        )
+                        rejects = [_as_reject(source, f) for f in framing]
+                        if self._partitions == 1:
+                            yield RecordBatch(REPLAY_STREAM, source, records, positions, rejects)
+                        else:
+                            for batch in self._split(source, records, positions, rejects):
+                                yield batch
                     # Let signal handlers and housekeeping run between batches.
                     await asyncio.sleep(0)
             finished_bytes += path.stat().st_size
             self._done_bytes = finished_bytes
+
+    def _split(self, source: str, records: list[Any], positions: list[int], rejects: list[Reject]) -> list[RecordBatch]:
+        by_partition: dict[int, RecordBatch] = {}
+        for record, position in zip(records, positions, strict=True):
+            # A batched record is split per tick, as the publisher sends ticks.
+            items = record if type(record) is list else [record]
+            for item in items:
+                partition = partition_for(symbol_of(item), self._partitions)
+                batch = by_partition.get(partition)
+                if batch is None:
+                    batch = by_partition[partition] = RecordBatch(f"p{partition}", source, [], [])
+                batch.records.append(item)
+                batch.positions.append(position)
+        if rejects:
+            by_partition.setdefault(0, RecordBatch("p0", source, [], [])).rejects.extend(rejects)
+        return [by_partition[p] for p in sorted(by_partition)]
 
 
 def _as_reject(source: str, framing: FramingReject) -> Reject:

@@ -44,13 +44,16 @@ def _decode_only_rate(path: Path) -> tuple[int, float]:
 def _replay_child(path: Path, out: Path) -> dict[str, float]:
     """Replay in a fresh process; returns its throughput and peak RSS."""
     code = (
-        "import json, resource, sys, time\n"
+        "import json, sys, time\n"
         "from barsmith.replay import replay_files\n"
         "t = time.perf_counter()\n"
         f"s = replay_files([{str(path)!r}], {str(out)!r}, bars={list(BENCH_SPECS)!r}, replace=True)\n"
         "e = time.perf_counter() - t\n"
+        # VmHWM, not ru_maxrss: Linux carries ru_maxrss across exec, so a child would
+        # report the parent's peak (the parent holds the whole feed in memory).
+        "hwm = [l for l in open('/proc/self/status') if l.startswith('VmHWM:')][0].split()[1]\n"
         "print(json.dumps({'ticks': s.stats.records, 'seconds': e, 'engine_s': s.elapsed_s,"
-        " 'rss_kib': resource.getrusage(resource.RUSAGE_SELF).ru_maxrss}))\n"
+        " 'rss_kib': int(hwm)}))\n"
     )
     done = subprocess.run([sys.executable, "-c", code], check=True, capture_output=True, text=True)
     result: dict[str, float] = json.loads(done.stdout.strip().splitlines()[-1])
@@ -71,9 +74,9 @@ def run_bench(ticks: int, symbols: int, seed: int) -> list[str]:
             took = time.perf_counter() - started
             lines.append(f"generated {n:,} ticks ({feed.stat().st_size:,} bytes) in {took:.1f} s")
             feeds[n] = feed
-        count, decode_rate = _decode_only_rate(feeds[ticks])
         replay = _replay_child(feeds[ticks], root / "out")
         small = _replay_child(feeds[small_n], root / "out-small")
+        count, decode_rate = _decode_only_rate(feeds[ticks])
         replay_rate = replay["ticks"] / replay["engine_s"]
         lines += [
             f"decode-only (msgpack.Unpacker) : {decode_rate:12,.0f} ticks/s",

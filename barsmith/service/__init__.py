@@ -1,0 +1,1 @@
+"""The long-running service: Kafka in, bars out, metrics and health over HTTP."""

@@ -1,0 +1,143 @@
+"""Assembling and running the service from settings; ``--workers N`` supervision."""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+from collections import Counter
+from collections.abc import Sequence
+from typing import Any
+
+from barsmith.errors import ConfigError
+from barsmith.ingest.rejects import Reject
+from barsmith.runner import RunSummary
+from barsmith.service.daemon import ServiceRunner
+from barsmith.settings import Settings
+from barsmith.sinks.base import BarSink, RejectSink
+from barsmith.sinks.kafka import KafkaBarSink
+from barsmith.sinks.parquet import ParquetBarSink, ParquetRejectSink
+from barsmith.sources.kafka import KafkaSource
+
+log = logging.getLogger("barsmith.service")
+
+
+class _JsonFormatter(logging.Formatter):
+    def format(self, record: logging.LogRecord) -> str:
+        return json.dumps(
+            {
+                "ts": self.formatTime(record, "%Y-%m-%dT%H:%M:%S"),
+                "level": record.levelname.lower(),
+                "logger": record.name,
+                "msg": record.getMessage(),
+            }
+        )
+
+
+def configure_logging(as_json: bool) -> None:
+    """One line per notable event on stderr (never one per tick)."""
+    handler = logging.StreamHandler(sys.stderr)
+    if as_json:
+        handler.setFormatter(_JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    root = logging.getLogger()
+    root.handlers[:] = [handler]
+    root.setLevel(logging.INFO)
+    logging.getLogger("aiokafka").setLevel(logging.WARNING)
+
+
+class LogRejectSink:
+    """When no rejects directory is set: count rejects and log a summary per batch."""
+
+    def __init__(self) -> None:
+        self.counts: Counter[str] = Counter()
+
+    async def write(self, rejects: Sequence[Reject]) -> None:
+        batch = Counter(r.reason.value for r in rejects)
+        self.counts.update(batch)
+        first = rejects[0]
+        log.warning(
+            "%d rejected record(s) (%s); first at %s offset %d: %s",
+            len(rejects),
+            ", ".join(f"{k} {v}" for k, v in sorted(batch.items())),
+            first.source,
+            first.position,
+            first.detail,
+        )
+
+    async def close(self) -> None:
+        return None
+
+
+def build_service(settings: Settings) -> ServiceRunner:
+    """The service for ``settings``: a Kafka source, the configured sinks, metrics."""
+    if not settings.kafka.output_topic and settings.parquet.dir is None:
+        raise ConfigError("no sink: give --output-topic and/or --parquet-dir")
+    specs = settings.bar_specs()
+    sinks: list[BarSink] = []
+    if settings.kafka.output_topic:
+        sinks.append(KafkaBarSink(settings.kafka, settings.kafka.output_topic))
+    prefix = f"{settings.kafka.client_id}-{socket.gethostname()}-{os.getpid()}-{time.time_ns() // 1_000_000}-"
+    reject_sink: RejectSink = LogRejectSink()
+    if settings.parquet.dir is not None:
+        settings.parquet.dir.mkdir(parents=True, exist_ok=True)
+        pq = settings.parquet
+        sinks.append(
+            ParquetBarSink(
+                pq.dir,  # type: ignore[arg-type]
+                specs,
+                row_group_rows=pq.row_group_rows,
+                max_file_rows=pq.max_file_rows,
+                roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
+                compression=pq.compression,
+                file_prefix=prefix,
+            )
+        )
+        reject_sink = ParquetRejectSink(pq.dir, f"_rejects-{prefix.rstrip('-')}.parquet")  # type: ignore[arg-type]
+    return ServiceRunner(settings, KafkaSource(settings.kafka), sinks, reject_sink)
+
+
+def run_service(settings: Settings) -> RunSummary:
+    """Run one service process until drained or signalled."""
+    runner = build_service(settings)
+
+    def force_exit() -> None:
+        log.warning("second signal: exiting now without flushing")
+        os._exit(130)
+
+    runner.on_force_exit = force_exit
+    return runner.run()
+
+
+def run_workers(settings: Settings, argv: Sequence[str]) -> int:
+    """Start ``settings.service.workers`` processes in one consumer group and wait.
+
+    Each child runs ``barsmith run`` with the same arguments and ``--workers 1``;
+    child i serves metrics on port base+i. Signals are forwarded to every child.
+    """
+    count = settings.service.workers
+    base_port = settings.metrics.port
+    children: list[subprocess.Popen[bytes]] = []
+    for index in range(count):
+        args = [sys.executable, "-m", "barsmith", *argv, "--workers", "1"]
+        if base_port:
+            args += ["--metrics-port", str(base_port + index)]
+        env = dict(os.environ, BARSMITH_WORKER_INDEX=str(index))
+        children.append(subprocess.Popen(args, env=env))
+    log.info("started %d workers: pids %s", count, ", ".join(str(c.pid) for c in children))
+
+    def forward(signum: int, _frame: Any) -> None:
+        for child in children:
+            if child.poll() is None:
+                child.send_signal(signum)
+
+    signal.signal(signal.SIGTERM, forward)
+    signal.signal(signal.SIGINT, forward)
+    codes = [child.wait() for child in children]
+    return max(codes) if any(codes) else 0

@@ -1,0 +1,228 @@
+"""``barsmith run``: the live service, the same engine as replay on a Kafka source.
+
+:class:`ServiceRunner` extends the replay :class:`~barsmith.runner.Runner` with the
+daemon's housekeeping (one tick, every ``housekeeping_interval_s``):
+
+* the idle rule: a partition that received nothing for ``idle_close_s`` of wall time
+  closes the time bars whose end is at least that far behind the wall clock;
+* offset commits every ``commit_interval_s``, always after the sinks have flushed
+  what the committed records produced;
+* drain mode (``exit_when_idle_s``): exit once no record arrived for that long.
+
+Shutdown (SIGTERM/SIGINT, drain mode, or input ended) runs in a fixed order under
+``shutdown_timeout_s``: stop fetching → close open bars (marked incomplete) → flush
+sinks → commit → close connections. A second signal skips the flush.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import time
+from collections.abc import Sequence
+
+from barsmith.bars.bar import Bar
+from barsmith.engine import EngineStats
+from barsmith.errors import SinkError
+from barsmith.runner import Runner, RunSummary
+from barsmith.service.http import HealthServer
+from barsmith.service.metrics import PartitionView, ServiceMetrics
+from barsmith.settings import Settings
+from barsmith.sinks.base import BarSink, RejectSink
+from barsmith.sinks.kafka import KafkaBarSink
+from barsmith.sources.base import RecordBatch
+from barsmith.sources.kafka import KafkaSource
+
+log = logging.getLogger("barsmith.service")
+
+
+class _CountingSink:
+    """Wraps a sink to count bars, errors and latency in the service's metrics."""
+
+    def __init__(self, inner: BarSink, metrics: ServiceMetrics) -> None:
+        self.inner = inner
+        self.name = inner.name
+        self._metrics = metrics
+
+    async def publish(self, bars: Sequence[Bar]) -> None:
+        try:
+            await self.inner.publish(bars)
+        except SinkError:
+            self._metrics.sink_errors.labels(sink=self.name).inc()
+            raise
+        self._metrics.count_bars(self.name, bars)
+
+    async def flush(self) -> None:
+        try:
+            await self.inner.flush()
+        except SinkError:
+            self._metrics.sink_errors.labels(sink=self.name).inc()
+            raise
+
+    async def close(self) -> None:
+        await self.inner.close()
+
+
+class ServiceRunner(Runner):
+    """The daemon: a :class:`Runner` over a :class:`KafkaSource` with housekeeping."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        source: KafkaSource,
+        sinks: Sequence[BarSink],
+        reject_sink: RejectSink,
+        metrics: ServiceMetrics | None = None,
+    ) -> None:
+        self.settings = settings
+        self.kafka_source = source
+        self._retired = EngineStats()  # counters of engines whose partitions were revoked
+        self.metrics = metrics or ServiceMetrics(
+            PartitionView(self.total_stats, lambda: self.engines, self._lags),
+        )
+        for sink in sinks:
+            if isinstance(sink, KafkaBarSink):
+                sink.on_published = self._observe_publish
+        counted: list[_CountingSink] = [_CountingSink(sink, self.metrics) for sink in sinks]
+        super().__init__(
+            settings.bar_specs(),
+            settings.lateness_ns,
+            source,
+            counted,
+            reject_sink,
+            housekeeping_interval_s=settings.service.housekeeping_interval_s,
+        )
+        source.on_revoked = self._on_revoked
+        source.on_assigned = self._on_assigned
+        self.counted_sinks = counted
+        self._http: HealthServer | None = None
+        self._last_commit = time.monotonic()
+        self._last_input = time.monotonic()
+        self._records_seen = 0
+
+    # -- lifecycle -------------------------------------------------------------------
+
+    @property
+    def metrics_port(self) -> int | None:
+        return self._http.port if self._http is not None else None
+
+    def ready(self) -> bool:
+        """``/readyz``: the consumer runs and holds at least one partition."""
+        return self.kafka_source.started.is_set() and self.kafka_source.assigned and not self.should_exit
+
+    async def startup(self) -> None:
+        await super().startup()
+        port = self.settings.metrics.port
+        if port is not None:
+            self._http = HealthServer(self.metrics.registry, self.ready, self.settings.metrics.host, port)
+            await self._http.start()
+        for sink in self.counted_sinks:
+            if isinstance(sink.inner, KafkaBarSink):
+                from barsmith.tools.bus import ensure_topic
+
+                await ensure_topic(self.settings.kafka, sink.inner.topic, self.settings.kafka.output_partitions)
+                await sink.inner.start()
+        await self.kafka_source.start()
+        log.info(
+            "consuming %s as group %s; bars %s",
+            ", ".join(self.settings.kafka.input_topics),
+            self.settings.kafka.group_id,
+            ", ".join(self.settings.bars),
+        )
+
+    async def process_batch(self, batch: RecordBatch) -> None:
+        await super().process_batch(batch)
+        self._last_input = time.monotonic()
+
+    async def housekeeping(self, now: float) -> None:
+        service = self.settings.service
+        await self._apply_idle_rule(now)
+        if now - self._last_commit >= self.settings.kafka.commit_interval_s:
+            await self._flush_and_commit()
+        drain = service.exit_when_idle_s
+        if drain is not None and now - self._last_input >= drain and not self.should_exit:
+            log.info("no input for %.1f s: draining and exiting", drain)
+            self.should_exit = True
+            self.source.stop()
+
+    async def shutdown(self) -> RunSummary:
+        timeout = self.settings.service.shutdown_timeout_s
+        started = time.monotonic()
+        try:
+            summary = await asyncio.wait_for(self._shutdown_in_order(), timeout=timeout)
+        except TimeoutError:
+            log.error("shutdown did not finish within %.1f s; exiting without a final commit", timeout)
+            summary = RunSummary(self.total_stats(), time.perf_counter() - self._started, True)
+        finally:
+            if self._http is not None:
+                await self._http.close()
+        log.info("stopped in %.2f s", time.monotonic() - started)
+        return summary
+
+    async def _shutdown_in_order(self) -> RunSummary:
+        if not self.force_exit:
+            for engine in self.engines.values():
+                engine.finish()
+                await self.deliver(engine)
+            for sink in self.sinks:
+                await sink.flush()
+            await self.kafka_source.commit()
+            self.metrics.commits.inc()
+        for sink in self.sinks:
+            await sink.close()
+        await self.reject_sink.close()
+        await self.source.close()
+        return RunSummary(self.total_stats(), time.perf_counter() - self._started, False)
+
+    # -- housekeeping jobs -------------------------------------------------------------
+
+    async def _apply_idle_rule(self, now: float) -> None:
+        idle_s = self.settings.service.idle_close_s
+        wall_ns = time.time_ns()
+        limit_ns = wall_ns - int(idle_s * 1e9)
+        for name, state in self.kafka_source.partitions.items():
+            if now - state.last_record_wall >= idle_s:
+                engine = self.engines.get(name)
+                if engine is not None:
+                    engine.close_through(limit_ns)
+                    await self.deliver(engine)
+
+    async def _flush_and_commit(self, streams: list[str] | None = None) -> None:
+        for sink in self.sinks:
+            await sink.flush()
+        committed = await self.kafka_source.commit(streams)
+        if committed:
+            self.metrics.commits.inc()
+        self._last_commit = time.monotonic()
+
+    async def _on_revoked(self, streams: list[str]) -> None:
+        """Before partitions leave: publish what is final, flush, commit, drop their state.
+        Open bars of a revoked partition are not carried over (exactly-once hand-over
+        of open bars is the checkpointing feature's job)."""
+        for name in streams:
+            engine = self.engines.get(name)
+            if engine is not None:
+                await self.deliver(engine)
+        await self._flush_and_commit(streams)
+        for name in streams:
+            engine = self.engines.pop(name, None)
+            if engine is not None:
+                self._retired.add(engine.stats)
+                log.warning("partition %s revoked; its open bars were dropped", name)
+
+    async def _on_assigned(self, streams: list[str]) -> None:
+        # Drain mode counts idle time from the (re)assignment, not from start-up: a
+        # member waiting for the group to settle has not been idle on its input.
+        self._last_input = time.monotonic()
+
+    def _observe_publish(self, bar: Bar, delay_s: float) -> None:
+        self.metrics.publish_delay.observe(delay_s)
+        self.metrics.event_to_publish.observe(max(0.0, time.time() - bar.end / 1e9))
+
+    def _lags(self) -> dict[str, tuple[str, int, int | None]]:
+        return {name: (s.topic, s.partition, s.lag) for name, s in self.kafka_source.partitions.items()}
+
+    def total_stats(self) -> EngineStats:
+        total = super().total_stats()
+        total.add(self._retired)
+        return total

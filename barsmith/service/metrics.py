@@ -1,0 +1,118 @@
+"""Prometheus metrics of the service (names follow the Prometheus naming guide:
+base units, ``_total`` for counters).
+
+Engine counters are read from the engines' own statistics at scrape time (a custom
+collector), so the per-tick path pays nothing for them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Iterator
+from typing import Any
+
+from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
+from barsmith.engine import Engine, EngineStats
+
+# Close-to-publish delays: sub-millisecond up to tens of seconds.
+_DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
+_EVENT_BUCKETS = (0.1, 0.25, 0.5, 1.0, 2.0, 3.0, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0)
+
+
+class PartitionView:
+    """What the collector needs from the runner, as plain callables."""
+
+    def __init__(
+        self,
+        totals: Callable[[], EngineStats],
+        engines: Callable[[], dict[str, Engine]],
+        lags: Callable[[], dict[str, tuple[str, int, int | None]]],
+    ) -> None:
+        self.totals = totals
+        self.engines = engines
+        self.lags = lags
+
+
+class _EngineCollector(Collector):
+    def __init__(self, view: PartitionView) -> None:
+        self._view = view
+
+    def collect(self) -> Iterator[Metric]:
+        stats = self._view.totals()
+        messages = CounterMetricFamily(
+            "barsmith_messages", "Tick messages by outcome (gap and late are also accepted)", labels=["outcome"]
+        )
+        messages.add_metric(["accepted"], stats.accepted)
+        messages.add_metric(["duplicate"], stats.duplicates)
+        messages.add_metric(["gap"], stats.gaps)
+        messages.add_metric(["rejected"], sum(stats.rejected.values()))
+        messages.add_metric(["late"], stats.late)
+        yield messages
+        rejects = CounterMetricFamily("barsmith_rejects", "Rejected records by reason", labels=["reason"])
+        for reason, count in sorted(stats.rejected.items()):
+            rejects.add_metric([reason], count)
+        yield rejects
+        built = CounterMetricFamily("barsmith_bars_built", "Bars closed by the engines, by spec", labels=["spec"])
+        for spec, count in sorted(stats.bars.items()):
+            built.add_metric([spec], count)
+        yield built
+
+        lag = GaugeMetricFamily(
+            "barsmith_consumer_lag_messages", "Records behind the partition's high watermark", labels=["partition"]
+        )
+        for name, (_topic, _partition, value) in sorted(self._view.lags().items()):
+            if value is not None:
+                lag.add_metric([name], value)
+        yield lag
+        watermark = GaugeMetricFamily(
+            "barsmith_watermark_seconds",
+            "Largest accepted event time, per partition (Unix seconds)",
+            labels=["partition"],
+        )
+        books = {"live": 0, "resyncing": 0}
+        for name, engine in sorted(self._view.engines().items()):
+            if engine.watermark_ns:
+                watermark.add_metric([name], engine.watermark_ns / 1e9)
+            for book in engine.books():
+                books[book.status.value] += 1
+        yield watermark
+        book_gauge = GaugeMetricFamily("barsmith_books", "Symbol books by status", labels=["status"])
+        for status, count in books.items():
+            book_gauge.add_metric([status], count)
+        yield book_gauge
+
+
+class ServiceMetrics:
+    """The service's registry and the metrics it updates directly."""
+
+    def __init__(self, view: PartitionView) -> None:
+        self.registry = CollectorRegistry()
+        self.registry.register(_EngineCollector(view))
+        self.bars = Counter(
+            "barsmith_bars", "Bars handed to a sink, by spec and sink", ["spec", "sink"], registry=self.registry
+        )
+        self.sink_errors = Counter("barsmith_sink_errors", "Sink failures, by sink", ["sink"], registry=self.registry)
+        self.commits = Counter(
+            "barsmith_offset_commits", "Offset commits to the consumer group", registry=self.registry
+        )
+        self.publish_delay = Histogram(
+            "barsmith_bar_publish_delay_seconds",
+            "Wall time from a bar's close to the broker's acknowledgement",
+            buckets=_DELAY_BUCKETS,
+            registry=self.registry,
+        )
+        self.event_to_publish = Histogram(
+            "barsmith_event_to_publish_seconds",
+            "Wall clock at publish minus the bar's end (event time); meaningful when event time is wall time",
+            buckets=_EVENT_BUCKETS,
+            registry=self.registry,
+        )
+
+    def count_bars(self, sink: str, bars: Iterable[Any]) -> None:
+        counts: dict[str, int] = {}
+        for bar in bars:
+            counts[bar.spec] = counts.get(bar.spec, 0) + 1
+        for spec, count in counts.items():
+            self.bars.labels(spec=spec, sink=sink).inc(count)
