@@ -125,6 +125,7 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--ticks", type=_positive_int, default=2_000_000)
     bench.add_argument("--symbols", type=_positive_int, default=20)
     bench.add_argument("--seed", type=int, default=11)
+    bench.add_argument("--bootstrap", metavar="HOST:PORT", help="benchmark the service through this broker instead")
     bench.set_defaults(handler=_cmd_bench)
     return parser
 
@@ -298,9 +299,15 @@ def _cmd_show(args: argparse.Namespace) -> int:
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
-    from barsmith.tools.bench import run_bench
+    if args.bootstrap:
+        from barsmith.tools.bench_bus import run_bus_bench
 
-    for line in run_bench(args.ticks, args.symbols, args.seed):
+        lines = run_bus_bench(args.bootstrap, args.ticks, args.seed)
+    else:
+        from barsmith.tools.bench import run_bench
+
+        lines = run_bench(args.ticks, args.symbols, args.seed)
+    for line in lines:
         print(line)
     return EXIT_OK
 

@@ -119,13 +119,16 @@ class ParquetBarSink:
         directory: Path,
         specs: Sequence[BarSpec],
         *,
-        row_group_rows: int = 65_536,
+        row_group_rows: int = 16_384,
         max_file_rows: int = 5_000_000,
         roll_interval_s: float | None = None,
         compression: str = "zstd",
         file_prefix: str = "",
     ) -> None:
         self.directory = directory
+        # pyarrow imports its pandas shim on the first conversion; pay that at start-up
+        # rather than in the middle of a run (it takes about a second).
+        bars_table([])
         self._stems = {spec.text: spec.file_stem for spec in specs}
         self._row_group_rows = row_group_rows
         self._max_file_rows = max_file_rows

@@ -1,0 +1,146 @@
+"""``barsmith bench --bootstrap HOST:PORT``: the service through a real broker.
+
+* consume-to-bars throughput of the service (bus sink on) against a bare aiokafka
+  consumer that only decodes the same records — with one tick per record and with
+  batches of 64 ticks per record;
+* bar-close-to-published latency (p50/p99) while the feed is published paced.
+
+One run's figures on this machine; not assertions.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import statistics
+import tempfile
+import time
+import uuid
+from pathlib import Path
+from typing import Any
+
+import msgpack
+
+from barsmith.service.app import build_service
+from barsmith.settings import KafkaSettings, load_settings
+from barsmith.tools.bus import publish_feed
+from barsmith.tools.synth import SynthConfig, write_feed
+
+SPECS = ["time:1m", "volume:20000", "notional:2e6"]
+
+
+async def _bare_consume(kafka: KafkaSettings, topic: str, ticks: int) -> float:
+    """Ticks/s of a consumer that only decodes (msgpack) what it fetches."""
+    from aiokafka import AIOKafkaConsumer
+
+    consumer = AIOKafkaConsumer(
+        topic,
+        bootstrap_servers=kafka.bootstrap_servers,
+        group_id=f"bench-bare-{uuid.uuid4().hex[:8]}",
+        auto_offset_reset="earliest",
+        enable_auto_commit=False,
+        max_poll_records=kafka.fetch_max_records,
+        isolation_level="read_committed",
+    )
+    await consumer.start()
+    seen = 0
+    started: float | None = None
+    try:
+        while seen < ticks:
+            polled = await consumer.getmany(timeout_ms=200, max_records=kafka.fetch_max_records)
+            for records in polled.values():
+                if started is None:
+                    started = time.perf_counter()
+                for record in records:
+                    value = msgpack.unpackb(record.value, raw=False, strict_map_key=False)
+                    seen += len(value) if type(value) is list else 1
+    finally:
+        await consumer.stop()
+    assert started is not None
+    return seen / (time.perf_counter() - started)
+
+
+async def _service_consume(bootstrap: str, topic: str, ticks: int, out_topic: str) -> tuple[float, list[float]]:
+    """Ticks/s of the service (bars to the bus) and its close-to-ack delays."""
+    settings = load_settings(
+        bars=SPECS,
+        kafka={
+            "bootstrap_servers": [bootstrap],
+            "input_topics": [topic],
+            "group_id": f"bench-svc-{uuid.uuid4().hex[:8]}",
+            "output_topic": out_topic,
+        },
+        metrics={"port": None},
+    )
+    runner = build_service(settings)
+    delays: list[float] = []
+    observe = runner._observe_publish
+
+    def record_delay(bar: Any, delay_s: float) -> None:
+        delays.append(delay_s)
+        observe(bar, delay_s)
+
+    for sink in runner.counted_sinks:
+        if hasattr(sink.inner, "on_published"):
+            sink.inner.on_published = record_delay
+    task = asyncio.create_task(runner.serve())
+    started: float | None = None
+    while runner.total_stats().records < ticks:
+        if started is None and runner.total_stats().records > 0:
+            started = time.perf_counter()
+        if task.done():
+            task.result()
+        await asyncio.sleep(0.002)
+    assert started is not None
+    rate = ticks / (time.perf_counter() - started)
+    runner.handle_exit()
+    await task
+    return rate, delays
+
+
+def _percentile(values: list[float], q: float) -> float:
+    if not values:
+        return float("nan")
+    ordered = sorted(values)
+    return ordered[min(len(ordered) - 1, int(q * len(ordered)))]
+
+
+async def _run(bootstrap: str, ticks: int, seed: int) -> list[str]:
+    kafka = load_settings(kafka={"bootstrap_servers": [bootstrap]}).kafka
+    lines = [f"barsmith bench (bus): {ticks:,} ticks, 8 partitions, broker {bootstrap}, specs {', '.join(SPECS)}"]
+    run_id = uuid.uuid4().hex[:8]
+    with tempfile.TemporaryDirectory(prefix="barsmith-busbench-") as tmp:
+        feed = Path(tmp) / "feed.msgpack"
+        write_feed(feed, SynthConfig(seed=seed, symbols=20, messages=ticks, duration_s=max(1800.0, ticks / 200)))
+        for batch in (1, 64):
+            topic = f"bench-{run_id}-b{batch}"
+            await publish_feed([feed], kafka, topic, partitions=8, batch_ticks=batch)
+            bare = await _bare_consume(kafka, topic, ticks)
+            ours, _ = await _service_consume(bootstrap, topic, ticks, f"{topic}-bars")
+            lines.append(
+                f"{batch:>2} tick(s)/record: bare consumer {bare:10,.0f} ticks/s, barsmith {ours:10,.0f} ticks/s,"
+                f" ratio {ours / bare:.2f}"
+            )
+        # Paced: publish at 20x event time while the service runs; time:1s bars close often.
+        paced_n = min(ticks, 60_000)
+        paced_feed = Path(tmp) / "paced.msgpack"
+        write_feed(paced_feed, SynthConfig(seed=seed + 1, symbols=20, messages=paced_n, duration_s=600))
+        topic = f"bench-{run_id}-paced"
+        from barsmith.tools.bus import ensure_topic
+
+        await ensure_topic(kafka, topic, 8)
+        service = asyncio.create_task(_service_consume(bootstrap, topic, paced_n, f"{topic}-bars"))
+        await asyncio.sleep(3)  # let the service join its group first
+        await publish_feed([paced_feed], kafka, topic, partitions=8, speed=20.0)
+        _, delays = await service
+        worst = max(delays) * 1000 if delays else float("nan")
+        lines.append(
+            f"paced (20x real time), bar close -> broker ack over {len(delays):,} bars: "
+            f"p50 {_percentile(delays, 0.5) * 1000:.1f} ms, p99 {_percentile(delays, 0.99) * 1000:.1f} ms, "
+            f"max {worst:.1f} ms, mean {statistics.fmean(delays) * 1000:.1f} ms"
+        )
+    return lines
+
+
+def run_bus_bench(bootstrap: str, ticks: int, seed: int) -> list[str]:
+    """Run the bus benchmark against the broker at ``bootstrap``; returns report lines."""
+    return asyncio.run(_run(bootstrap, ticks, seed))

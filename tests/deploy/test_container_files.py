@@ -1,0 +1,103 @@
+"""The container files stay consistent with the code (no Docker engine runs here)."""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+import pytest
+import yaml
+from prometheus_client import generate_latest
+from pydantic import BaseModel
+
+from barsmith.engine import EngineStats
+from barsmith.service.metrics import PartitionView, ServiceMetrics
+from barsmith.settings import Settings, load_settings
+
+DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
+ROOT = DEPLOY.parent
+
+
+def compose() -> dict[str, Any]:
+    loaded: dict[str, Any] = yaml.safe_load((DEPLOY / "docker-compose.yml").read_text())
+    return loaded
+
+
+def barsmith_env() -> dict[str, str]:
+    return {k: str(v) for k, v in compose()["services"]["barsmith"]["environment"].items()}
+
+
+def resolves(model: type[BaseModel], parts: list[str]) -> bool:
+    field = model.model_fields.get(parts[0])
+    if field is None:
+        return False
+    if len(parts) == 1:
+        return True
+    nested = field.annotation
+    return isinstance(nested, type) and issubclass(nested, BaseModel) and resolves(nested, parts[1:])
+
+
+def test_every_barsmith_variable_is_a_known_setting() -> None:
+    for name in barsmith_env():
+        assert name.startswith("BARSMITH_")
+        path = name.removeprefix("BARSMITH_").lower().split("__")
+        assert resolves(Settings, path), f"{name} is not a barsmith setting"
+
+
+def test_the_compose_settings_validate(monkeypatch: pytest.MonkeyPatch) -> None:
+    for name, value in barsmith_env().items():
+        monkeypatch.setenv(name, value)
+    settings = load_settings()
+    assert settings.kafka.output_topic == "bars"
+    assert settings.bar_specs()
+
+
+def test_ports_and_addresses_agree() -> None:
+    services = compose()["services"]
+    env = barsmith_env()
+    metrics_port = int(env["BARSMITH_METRICS__PORT"])
+    assert f"{metrics_port}:{metrics_port}" in services["barsmith"]["ports"]
+    prometheus = yaml.safe_load((DEPLOY / "prometheus" / "prometheus.yml").read_text())
+    targets = prometheus["scrape_configs"][0]["static_configs"][0]["targets"]
+    assert targets == [f"barsmith:{metrics_port}"]
+    dockerfile = (DEPLOY / "Dockerfile").read_text()
+    assert f"EXPOSE {metrics_port}" in dockerfile
+    assert f"127.0.0.1:{metrics_port}/healthz" in dockerfile
+    assert re.search(r"^USER (?!root)\w+", dockerfile, re.M), "the image must not run as root"
+    advertised = services["kafka"]["environment"]["KAFKA_ADVERTISED_LISTENERS"]
+    bootstrap = json.loads(env["BARSMITH_KAFKA__BOOTSTRAP_SERVERS"])
+    assert bootstrap == [advertised.split("://")[1]]
+    topic_cmd = services["topics"]["command"]
+    assert topic_cmd[topic_cmd.index("--topic") + 1] == json.loads(env["BARSMITH_KAFKA__INPUT_TOPICS"])[0]
+    assert topic_cmd[topic_cmd.index("--partitions") + 1] == "8"
+    publish = services["publisher"]["command"]
+    assert publish[publish.index("--topic") + 1] == "ticks"
+    assert (ROOT / publish[1].lstrip("/")).is_file()
+
+
+def test_dockerfile_copies_what_exists() -> None:
+    for line in (DEPLOY / "Dockerfile").read_text().splitlines():
+        if line.startswith("COPY") and "--from" not in line:
+            for source in line.split()[1:-1]:
+                assert (ROOT / source).exists(), source
+
+
+def test_dashboard_queries_only_exposed_metrics() -> None:
+    stats = EngineStats()
+    stats.rejected["not_a_map"] = 1
+    metrics = ServiceMetrics(PartitionView(lambda: stats, dict, dict))
+    metrics.bars.labels(spec="time:1m", sink="bus").inc()
+    metrics.sink_errors.labels(sink="bus")
+    metrics.publish_delay.observe(0.01)
+    exposed = set(re.findall(r"^(barsmith_\w+)", generate_latest(metrics.registry).decode(), re.M))
+    exposed |= {"barsmith_consumer_lag_messages", "barsmith_watermark_seconds"}  # per partition, when assigned
+    dashboard = json.loads((DEPLOY / "grafana" / "dashboards" / "barsmith.json").read_text())
+    used = {
+        name
+        for panel in dashboard["panels"]
+        for t in panel["targets"]
+        for name in re.findall(r"barsmith_\w+", t["expr"])
+    }
+    assert used and used <= exposed, used - exposed
