@@ -1,4 +1,4 @@
-"""Framing: a byte stream of concatenated msgpack records → decoded objects with offsets.
+"""Framing: a byte stream of concatenated msgpack records → records with byte offsets.
 
 A recorded feed is a plain concatenation of msgpack values (maps, or arrays of maps
 for batched producers), optionally gzip-compressed. :class:`FrameReader` decodes it
@@ -19,6 +19,7 @@ from typing import IO, Any, Final
 
 import msgpack
 
+from barsmith.ingest.fastwire import INCOMPLETE, WireScanner
 from barsmith.ingest.ticks import RejectReason
 
 READ_BLOCK_BYTES: Final = 1 << 20
@@ -67,18 +68,23 @@ def looks_like_tick(obj: Any) -> bool:
 
 
 class FrameReader:
-    """Decode a binary stream into batches of ``(objects, offsets, rejects)``."""
+    """Decode a binary stream into batches of ``(records, offsets, rejects)``.
+
+    Records of the usual shape are decoded straight into :class:`Tick` objects (or
+    lists of them, for a batched record) by :class:`WireScanner`; any other record
+    is decoded by msgpack into plain objects, which the engine validates the
+    general way. Offsets are where each record starts.
+    """
 
     def __init__(self, stream: IO[bytes], block_bytes: int = READ_BLOCK_BYTES) -> None:
         self._stream = stream
         self._block_bytes = block_bytes
-        self._unpacker = new_unpacker()
-        self._base = 0  # absolute offset of the unpacker's position 0
-        self._next_start = 0  # absolute offset where the next record starts
-        self._fed_end = 0  # absolute offset just past the last byte fed
-        self._blocks: list[tuple[int, bytes]] = []  # fed blocks not yet wholly consumed
+        self._buf = b""
+        self._base = 0  # absolute offset of _buf[0]
+        self._pos = 0  # next record's index in _buf
         self._eof = False
         self._done = False
+        self._scanner = WireScanner()
 
     @property
     def done(self) -> bool:
@@ -86,108 +92,120 @@ class FrameReader:
         return self._done
 
     def batches(self, max_records: int) -> Iterator[tuple[list[Any], list[int], list[FramingReject]]]:
-        """Yield batches of at most ``max_records`` decoded objects until the stream ends."""
+        """Yield batches of at most ``max_records`` records until the stream ends."""
         while not self._done:
             batch = self.read_batch(max_records)
             if batch[0] or batch[2]:
                 yield batch
 
     def read_batch(self, max_records: int) -> tuple[list[Any], list[int], list[FramingReject]]:
-        """Decode up to ``max_records`` objects; returns empty lists once done."""
+        """Decode up to ``max_records`` records; returns empty lists once done."""
         objects: list[Any] = []
         offsets: list[int] = []
         rejects: list[FramingReject] = []
+        scanner = self._scanner
         while len(objects) < max_records and not self._done:
-            unpacker = self._unpacker
+            buf = self._buf
+            pos = self._pos
             base = self._base
-            try:
-                # Hot loop: one append pair per record. The unpacker resumes partial
-                # records across feeds and its tell() then counts the partly parsed
-                # bytes, so a record's start is tracked here, after each whole record.
-                for obj in unpacker:
-                    objects.append(obj)
-                    offsets.append(self._next_start)
-                    self._next_start = base + unpacker.tell()
-                    if len(objects) >= max_records:
-                        break
-                else:
-                    self._feed_or_finish(self._next_start, rejects)
-            except _DECODE_ERRORS as exc:
-                self._resync(self._next_start, f"{type(exc).__name__}: {exc}", rejects)
+            end = len(buf)
+            result = INCOMPLETE
+            # Hot loop: one scan and two appends per record.
+            while pos < end and len(objects) < max_records:
+                result = scanner.scan_record(buf, pos)
+                if result < 0:
+                    break
+                objects.append(scanner.tick if scanner.batch is None else scanner.batch)
+                offsets.append(base + pos)
+                pos = result
+            self._pos = pos
+            if len(objects) >= max_records:
+                break
+            if pos >= end or result == INCOMPLETE:
+                if self._refill():
+                    continue
+                if self._pos >= len(self._buf):
+                    self._done = True
+                    break
+            self._general_record(objects, offsets, rejects)
         return objects, offsets, rejects
 
     # -- buffering -------------------------------------------------------------------
 
-    def _read_block(self) -> bytes:
+    def _refill(self) -> bool:
+        """Append the next block to what is left of the buffer; False at end of stream."""
         if self._eof:
-            return b""
+            return False
         block = self._stream.read(self._block_bytes)
         if not block:
             self._eof = True
-        return block
+            return False
+        self._buf = self._buf[self._pos :] + block
+        self._base += self._pos
+        self._pos = 0
+        return True
 
-    def _feed(self, block: bytes, consumed_to: int) -> None:
-        self._blocks = [(start, data) for start, data in self._blocks if start + len(data) > consumed_to]
-        self._blocks.append((self._fed_end, block))
-        self._fed_end += len(block)
-        self._unpacker.feed(block)
-
-    def _bytes_from(self, offset: int) -> bytes:
-        """The fed bytes from ``offset`` to the end of what was fed."""
-        parts = [data[max(0, offset - start) :] for start, data in self._blocks if start + len(data) > offset]
-        return b"".join(parts)
-
-    def _restart_at(self, offset: int, data: bytes) -> None:
-        """Start a fresh unpacker at absolute ``offset`` holding ``data`` (bytes from there)."""
-        self._unpacker = new_unpacker()
-        self._base = offset
-        self._next_start = offset
-        self._blocks = [(offset, data)] if data else []
-        if data:
-            self._unpacker.feed(data)
-
-    def _feed_or_finish(self, consumed_to: int, rejects: list[FramingReject]) -> None:
-        block = self._read_block()
-        if block:
-            self._feed(block, consumed_to)
+    def _general_record(self, objects: list[Any], offsets: list[int], rejects: list[FramingReject]) -> None:
+        """Decode the record at the current position with msgpack (any shape), or
+        report what is wrong there and move past it."""
+        window = 4096
+        while True:
+            start = self._pos
+            buf = self._buf
+            unpacker = new_unpacker()
+            unpacker.feed(buf[start : start + window])
+            try:
+                obj = unpacker.unpack()
+            except msgpack.exceptions.OutOfData:
+                if start + window < len(buf):
+                    window *= 4
+                    continue
+                if self._refill():
+                    continue
+                self._finish_tail(rejects)
+                return
+            except _DECODE_ERRORS as exc:
+                self._resync(f"{type(exc).__name__}: {exc}", rejects)
+                return
+            objects.append(obj)
+            offsets.append(self._base + start)
+            self._pos = start + unpacker.tell()
             return
-        leftover = self._bytes_from(consumed_to)
-        if not leftover:
-            self._done = True
-            return
-        # Bytes remain that do not form a whole record: corruption if a valid record
-        # follows inside them, otherwise the last record was cut short.
+
+    def _finish_tail(self, rejects: list[FramingReject]) -> None:
+        """At end of input, bytes remain that do not form a whole record: corruption
+        if a valid record follows inside them, otherwise a truncated last record."""
+        leftover = self._buf[self._pos :]
+        offset = self._base + self._pos
         resume = _find_resync_point(leftover, 1)
         if resume is None:
             rejects.append(
                 FramingReject(
-                    consumed_to,
+                    offset,
                     RejectReason.TRUNCATED,
                     f"last record is incomplete: {len(leftover)} bytes at end of input",
                     leftover[:MAX_KEPT_BYTES],
                 )
             )
+            self._pos = len(self._buf)
             self._done = True
             return
-        rejects.append(_skipped(consumed_to, leftover[:resume], "bytes before a later record do not decode"))
-        self._restart_at(consumed_to + resume, leftover[resume:])
+        rejects.append(_skipped(offset, leftover[:resume], "bytes before a later record do not decode"))
+        self._pos += resume
 
-    def _resync(self, offset: int, why: str, rejects: list[FramingReject]) -> None:
-        data = self._bytes_from(offset)
+    def _resync(self, why: str, rejects: list[FramingReject]) -> None:
+        """Skip undecodable bytes up to the next plausible record (reading on if needed)."""
         while True:
-            resume = _find_resync_point(data, 1)
-            if resume is not None or self._eof:
+            resume = _find_resync_point(self._buf, self._pos + 1)
+            if resume is not None or not self._refill():
                 break
-            block = self._read_block()
-            self._fed_end += len(block)
-            data += block
+        offset = self._base + self._pos
         if resume is None:
-            rejects.append(_skipped(offset, data, why))
-            self._restart_at(offset + len(data), b"")
-            self._fed_end = offset + len(data)
+            rejects.append(_skipped(offset, self._buf[self._pos :], why))
+            self._pos = len(self._buf)
             return
-        rejects.append(_skipped(offset, data[:resume], why))
-        self._restart_at(offset + resume, data[resume:])
+        rejects.append(_skipped(offset, self._buf[self._pos : resume], why))
+        self._pos = resume
 
 
 def _skipped(offset: int, data: bytes, why: str) -> FramingReject:

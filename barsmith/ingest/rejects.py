@@ -7,7 +7,7 @@ from typing import Any, Final
 
 import msgpack
 
-from barsmith.ingest.ticks import RejectReason
+from barsmith.ingest.ticks import RejectReason, Tick
 
 REJECT_COLUMNS: Final[tuple[str, ...]] = (
     "source",
@@ -43,6 +43,8 @@ class Reject:
 
 def pack_record(obj: Any) -> bytes:
     """Re-encode a decoded record for the rejects file (best effort, never raises)."""
+    if isinstance(obj, Tick):
+        obj = obj.to_wire()
     try:
         return bytes(msgpack.packb(obj, use_bin_type=True))
     except (TypeError, ValueError, OverflowError):

@@ -16,6 +16,7 @@ from setuptools import build_meta as _setuptools_backend
 
 HOT_MODULES = [
     "barsmith/ingest/ticks.py",
+    "barsmith/ingest/fastwire.py",
     "barsmith/ingest/framing.py",
     "barsmith/book/book.py",
     "barsmith/bars/bar.py",
