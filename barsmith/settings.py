@@ -30,7 +30,7 @@ class ParquetSettings(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     dir: Path | None = None
-    row_group_rows: int = Field(16_384, gt=0, description="bars buffered per row group")
+    row_group_rows: int = Field(4_096, gt=0, description="bars buffered per row group")
     max_file_rows: int = Field(5_000_000, gt=0, description="a file rolls after this many bars")
     roll_interval_s: float | None = Field(None, gt=0, description="a file rolls after this many seconds")
     compression: Literal["zstd", "snappy", "gzip", "none"] = "zstd"

@@ -119,7 +119,7 @@ class ParquetBarSink:
         directory: Path,
         specs: Sequence[BarSpec],
         *,
-        row_group_rows: int = 16_384,
+        row_group_rows: int = 4_096,
         max_file_rows: int = 5_000_000,
         roll_interval_s: float | None = None,
         compression: str = "zstd",

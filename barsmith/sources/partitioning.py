@@ -11,6 +11,8 @@ from __future__ import annotations
 import functools
 from typing import Any
 
+from barsmith.ingest.ticks import Tick
+
 
 @functools.lru_cache(maxsize=65_536)
 def partition_for(symbol: str | None, partitions: int) -> int:
@@ -26,6 +28,8 @@ def partition_for(symbol: str | None, partitions: int) -> int:
 
 def symbol_of(record: Any) -> str | None:
     """The ``sym`` of a decoded record (the first tick's, for a batch), if it has one."""
+    if type(record) is Tick:
+        return record.sym
     if type(record) is list:
         return symbol_of(record[0]) if record else None
     if type(record) is dict:

@@ -13,6 +13,7 @@ from typing import Any
 import msgpack
 
 from barsmith.errors import ConfigError, InputError
+from barsmith.ingest.ticks import Tick
 from barsmith.settings import KafkaSettings
 from barsmith.sources.files import FileSource
 from barsmith.sources.kafka import security_kwargs
@@ -110,6 +111,7 @@ async def publish_feed(
     wall0 = time.monotonic()
 
     async def send(partition: int, value: Any, key: str | None) -> None:
+        value = as_wire(value)
         await producer.send(topic, value=packb(value), key=key.encode("utf-8") if key else None, partition=partition)
         summary.records += 1
 
@@ -148,8 +150,19 @@ async def publish_feed(
     return summary
 
 
+def as_wire(record: Any) -> Any:
+    """A record as the wire map(s) to publish (decoded ticks are re-encoded as maps)."""
+    if type(record) is Tick:
+        return record.to_wire()
+    if type(record) is list:
+        return [as_wire(item) for item in record]
+    return record
+
+
 def _event_time(record: Any) -> int | None:
     item = record[0] if type(record) is list and record else record
+    if type(item) is Tick:
+        return item.ts
     if type(item) is dict:
         ts = item.get("ts")
         return ts if type(ts) is int else None
