@@ -268,3 +268,32 @@ def _wait_ready(ports: list[int], proc: subprocess.Popen[str]) -> None:
             return
         assert time.monotonic() < deadline, f"workers not ready: {statuses}"
         time.sleep(0.5)
+
+
+async def test_idle_rule_closes_bars_of_a_quiet_partition(kafka_bootstrap: str, tmp_path: Path) -> None:
+    """Live-dated ticks, then silence: the idle rule closes their time bars (complete), where
+    the watermark alone would have left the last ones open until shutdown (incomplete)."""
+    now = time.time_ns()
+    start = (now - 30_000_000_000) // 1_000_000_000 * 1_000_000_000  # whole seconds: 10 bars
+    feed = tmp_path / "live.msgpack"
+    ticks = [
+        {"sym": "FENWORTH.KMX", "ts": start + i * 100_000_000, "seq": i + 1, "kind": "delta",
+         "trade_px": 10.0 + (i % 7) * 0.25, "trade_qty": 1.0}
+        for i in range(100)
+    ]  # fmt: skip
+    feed.write_bytes(b"".join(msgpack.packb(t) for t in ticks))
+    await publish_feed([feed], kafka(kafka_bootstrap), "idle-ticks", partitions=1)
+    settings = service_settings(
+        kafka_bootstrap,
+        "idle-ticks",
+        bars=["time:1s"],
+        parquet={"dir": tmp_path / "service"},
+        service={"idle_close_s": 1.0, "exit_when_idle_s": 5.0},
+    )
+    summary = await build_service(settings).serve()
+    assert summary.stats.accepted == 100
+    bars = pd.read_parquet(tmp_path / "service")
+    assert len(bars) == 10 and bars["trades"].sum() == 100
+    # Without the idle rule the last ~2 s of bars (within the lateness of the last tick)
+    # could only have been flushed at shutdown, marked incomplete.
+    assert bars["complete"].all()
