@@ -11,8 +11,17 @@ from barsmith._version import __version__
 from barsmith.bars.bar import BAR_COLUMNS, Bar
 from barsmith.bars.spec import BarKind, BarSpec, parse_specs
 from barsmith.book.book import BookStatus, Outcome, SymbolBook
+from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine, EngineStats
-from barsmith.errors import BarsmithError, BarSpecError, ConfigError, InputError, SinkError, StateError
+from barsmith.errors import (
+    BarsmithError,
+    BarSpecError,
+    CheckpointError,
+    ConfigError,
+    InputError,
+    SinkError,
+    StateError,
+)
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
 from barsmith.replay import replay_files
@@ -27,6 +36,7 @@ __all__ = [
     "BarSpecError",
     "BarsmithError",
     "BookStatus",
+    "CheckpointError",
     "ConfigError",
     "Engine",
     "EngineStats",
@@ -43,7 +53,9 @@ __all__ = [
     "SymbolBook",
     "Tick",
     "__version__",
+    "decode_checkpoint",
     "decode_tick",
+    "encode_checkpoint",
     "load_settings",
     "parse_specs",
     "replay_files",

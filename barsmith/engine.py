@@ -28,7 +28,8 @@ from typing import Any, Final
 
 from barsmith.bars.bar import Bar, OpenBar
 from barsmith.bars.spec import BarKind, BarSpec
-from barsmith.book.book import Outcome, SymbolBook
+from barsmith.book.book import BookStatus, Outcome, SymbolBook
+from barsmith.errors import StateError
 from barsmith.ingest.rejects import Reject, pack_record
 from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
 
@@ -164,6 +165,99 @@ class Engine:
         self.stats.records += 1
         self.stats.rejected[reject.reason.value] += 1
         self._rejects.append(reject)
+
+    # -- checkpoints -----------------------------------------------------------------
+
+    def to_state(self) -> dict[str, Any]:
+        """The engine's whole state as plain data (see :mod:`barsmith.checkpoint`).
+        Finished bars and rejects must have been taken first."""
+        if self._bars or self._rejects:
+            raise StateError("take_bars() and take_rejects() before a checkpoint: output is pending")
+        bar_ids: dict[int, int] = {}
+        bars: list[dict[str, Any]] = []
+
+        def bar_ref(bar: OpenBar) -> int:
+            key = id(bar)
+            if key not in bar_ids:
+                bar_ids[key] = len(bars)
+                bars.append(_bar_state(bar))
+            return bar_ids[key]
+
+        symbols = []
+        for sym, state in self._symbols.items():
+            book = state.book
+            symbols.append(
+                [
+                    sym,
+                    book.status.value,
+                    book.last_seq,
+                    book.last_ts,
+                    book.bid_px,
+                    book.bid_qty,
+                    book.ask_px,
+                    book.ask_qty,
+                    book.time_regressions,
+                    state.spread,
+                    state.spread_since,
+                    [None if bar is None else bar_ref(bar) for bar in state.bars],
+                ]
+            )
+        due = [[end, order, bar_ref(bar), state.book.symbol, index] for end, order, bar, state, index in self._due]
+        stats = self.stats
+        return {
+            "watermark": self._watermark,
+            "closed_through": self._closed_through,
+            "order": self._order,
+            "bars": bars,
+            "symbols": symbols,
+            "due": due,
+            "stats": [
+                stats.records,
+                stats.accepted,
+                stats.duplicates,
+                stats.gaps,
+                stats.late,
+                stats.time_regressions,
+                dict(stats.rejected),
+                dict(stats.bars),
+            ],
+        }
+
+    @classmethod
+    def from_state(cls, specs: Sequence[BarSpec], lateness_ns: int, data: dict[str, Any]) -> Engine:
+        """Rebuild an engine from :meth:`to_state` output (same specs and lateness)."""
+        engine = cls(specs, lateness_ns)
+        bars = [_bar_from_state(item) for item in data["bars"]]
+        for row in data["symbols"]:
+            sym = str(row[0])
+            state = _SymbolState(sym, len(engine.specs))
+            book = state.book
+            book.status = BookStatus(row[1])
+            book.last_seq = int(row[2])
+            book.last_ts = int(row[3])
+            book.bid_px, book.bid_qty, book.ask_px, book.ask_qty = row[4], row[5], row[6], row[7]
+            book.time_regressions = int(row[8])
+            state.spread = row[9]
+            state.spread_since = int(row[10])
+            refs: list[Any] = row[11]
+            if len(refs) != len(engine.specs):
+                raise StateError(f"checkpoint has {len(refs)} bar slots for {sym}, expected {len(engine.specs)}")
+            state.bars = [None if ref is None else bars[int(ref)] for ref in refs]
+            engine._symbols[sym] = state
+        for end, order, ref, sym, index in data["due"]:
+            engine._due.append((int(end), int(order), bars[int(ref)], engine._symbols[str(sym)], int(index)))
+        heapq.heapify(engine._due)
+        engine._next_due = engine._due[0][0] if engine._due else _NO_CLOSE
+        engine._watermark = int(data["watermark"])
+        engine._closed_through = int(data["closed_through"])
+        engine._order = int(data["order"])
+        stats = engine.stats
+        values: list[Any] = data["stats"]
+        stats.records, stats.accepted, stats.duplicates = int(values[0]), int(values[1]), int(values[2])
+        stats.gaps, stats.late, stats.time_regressions = int(values[3]), int(values[4]), int(values[5])
+        stats.rejected.update({str(k): int(v) for k, v in values[6].items()})
+        stats.bars.update({str(k): int(v) for k, v in values[7].items()})
+        return engine
 
     # -- the hot path ----------------------------------------------------------------
 
@@ -322,6 +416,30 @@ class Engine:
     ) -> None:
         self.stats.bars[bar.spec_text] += 1
         self._bars.append(bar.finish(book_state, complete, event_bar))
+
+
+_BAR_FIELDS: Final = (
+    "spec_text", "symbol", "start", "end", "open", "high", "low", "close", "volume", "notional", "trades",
+    "messages", "gaps", "spread_area", "spread_time", "spread_min", "spread_max", "open_spread",
+)  # fmt: skip
+
+
+def _bar_state(bar: OpenBar) -> dict[str, Any]:
+    out: dict[str, Any] = {name: getattr(bar, name) for name in _BAR_FIELDS}
+    out["closed_book"] = list(bar.closed_book) if bar.closed_book is not None else None
+    return out
+
+
+def _bar_from_state(item: dict[str, Any]) -> OpenBar:
+    bar = OpenBar(str(item["spec_text"]), str(item["symbol"]), int(item["start"]), int(item["end"]))
+    bar.open, bar.high, bar.low, bar.close = item["open"], item["high"], item["low"], item["close"]
+    bar.volume, bar.notional = item["volume"], item["notional"]
+    bar.trades, bar.messages, bar.gaps = int(item["trades"]), int(item["messages"]), int(item["gaps"])
+    bar.spread_area, bar.spread_time = item["spread_area"], int(item["spread_time"])
+    bar.spread_min, bar.spread_max, bar.open_spread = item["spread_min"], item["spread_max"], item["open_spread"]
+    closed = item["closed_book"]
+    bar.closed_book = (closed[0], closed[1], closed[2]) if closed is not None else None
+    return bar
 
 
 def _reject_of(

@@ -9,6 +9,7 @@ at the boundary where they enter, with the original chained as ``__cause__``::
     │   └── BarSpecError       a bar spec that does not parse
     ├── InputError             an input that cannot be read at all (missing file, I/O error)
     ├── SinkError              a sink could not write or publish
+    ├── CheckpointError        a checkpoint that cannot be restored (says why and what to do)
     └── StateError             an impossible state transition (a bug: carries symbol/offset)
 
 A malformed *record* is not an exception: it is counted and written to the rejects
@@ -36,6 +37,10 @@ class InputError(BarsmithError):
 
 class SinkError(BarsmithError):
     """A sink failed to write or publish bars."""
+
+
+class CheckpointError(BarsmithError):
+    """A checkpoint that cannot be used: unknown format version, other settings, damage."""
 
 
 class StateError(BarsmithError):

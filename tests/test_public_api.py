@@ -12,21 +12,52 @@ import barsmith.engine
 
 
 def test_public_names_are_pinned() -> None:
-    assert sorted(barsmith.__all__) == sorted(
-        [
-            "BAR_COLUMNS", "Bar", "BarKind", "BarSpec", "BarSpecError", "BarsmithError", "BookStatus",
-            "ConfigError", "Engine", "EngineStats", "InputError", "MalformedTickError", "Outcome", "Reject",
-            "RejectReason", "RunSummary", "Runner", "Settings", "SinkError", "StateError", "SymbolBook", "Tick",
-            "__version__", "decode_tick", "load_settings", "parse_specs", "replay_files",
-        ]
-    )  # fmt: skip
+    expected = [
+        "BAR_COLUMNS",
+        "Bar",
+        "BarKind",
+        "BarSpec",
+        "BarSpecError",
+        "BarsmithError",
+        "BookStatus",
+        "CheckpointError",
+        "ConfigError",
+        "Engine",
+        "EngineStats",
+        "InputError",
+        "MalformedTickError",
+        "Outcome",
+        "Reject",
+        "RejectReason",
+        "RunSummary",
+        "Runner",
+        "Settings",
+        "SinkError",
+        "StateError",
+        "SymbolBook",
+        "Tick",
+        "__version__",
+        "decode_checkpoint",
+        "decode_tick",
+        "encode_checkpoint",
+        "load_settings",
+        "parse_specs",
+        "replay_files",
+    ]
+    assert sorted(barsmith.__all__) == sorted(expected)
     for name in barsmith.__all__:
         assert hasattr(barsmith, name), name
 
 
 def test_exception_tree() -> None:
     assert issubclass(barsmith.BarSpecError, barsmith.ConfigError)
-    for cls in (barsmith.ConfigError, barsmith.InputError, barsmith.SinkError, barsmith.StateError):
+    for cls in (
+        barsmith.ConfigError,
+        barsmith.InputError,
+        barsmith.SinkError,
+        barsmith.StateError,
+        barsmith.CheckpointError,
+    ):
         assert issubclass(cls, barsmith.BarsmithError)
 
 

@@ -5,36 +5,13 @@ from __future__ import annotations
 import itertools
 from typing import Any
 
-from factories import T0, S, run_engine
+from factories import FEED_SPECS as SPECS
+from factories import FEED_SYMBOLS as SYMS
+from factories import S, feeds, run_engine
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from barsmith.bars.spec import BarKind, parse_specs
-
-SYMS = ["FENWORTH.KMX", "MARROWAY.KMX"]
-SPECS = ("time:1s", "time:1m", "ticks:3", "volume:25", "notional:1000")
-
-
-@st.composite
-def feeds(draw: st.DrawFn) -> list[dict[str, Any]]:
-    n = draw(st.integers(1, 120))
-    recs = []
-    ts = T0
-    seq = dict.fromkeys(SYMS, 0)
-    for _ in range(n):
-        sym = draw(st.sampled_from(SYMS))
-        ts += draw(st.integers(-S, 3 * S))  # event time may go backwards a little
-        step = draw(st.sampled_from([1, 1, 1, 1, 0, -1, 3]))  # duplicates, stale, gaps
-        seq[sym] = max(0, seq[sym] + step)
-        rec: dict[str, Any] = {"sym": sym, "ts": max(1, ts), "seq": seq[sym]}
-        rec["kind"] = draw(st.sampled_from(["delta"] * 6 + ["snapshot"]))
-        if draw(st.booleans()):
-            bid = draw(st.integers(95, 100)) * 1.0
-            rec.update(bid_px=bid, ask_px=bid + draw(st.integers(1, 3)) * 0.5)
-        if draw(st.booleans()):
-            rec.update(trade_px=draw(st.integers(90, 110)) * 1.0, trade_qty=float(draw(st.integers(1, 20))))
-        recs.append(rec)
-    return recs
 
 
 def accepted_trades(recs: list[dict[str, Any]]) -> list[tuple[str, int, float]]:
