@@ -124,13 +124,18 @@ class Engine:
     def process(self, records: Sequence[Any], positions: Sequence[int], source: str) -> None:
         """Feed decoded msgpack records (tick maps, or arrays of them) in stream order.
         ``positions[i]`` locates ``records[i]`` for the rejects file."""
-        on_record = self._on_record
-        for record, position in zip(records, positions, strict=True):
+        if len(records) != len(positions):
+            raise ValueError("records and positions differ in length")
+        # Direct self._on_record calls: compiled, they are native calls (a cached
+        # bound method would go through the generic Python call path).
+        for i in range(len(records)):
+            record = records[i]
+            position = positions[i]
             if type(record) is list:
                 for item in record:
-                    on_record(item, position, source)
+                    self._on_record(item, position, source)
             else:
-                on_record(record, position, source)
+                self._on_record(record, position, source)
 
     def close_through(self, limit_ns: int) -> None:
         """Close every time bar whose end is at or before ``limit_ns`` (the idle rule);

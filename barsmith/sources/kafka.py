@@ -190,6 +190,9 @@ class KafkaSource:
                 state.last_record_wall = now
                 state.next_offset = records[-1].offset + 1
                 yield self._decode(name, records)
+                # Let aiokafka's fetcher run between partitions, so the next fetch
+                # overlaps with processing instead of following it.
+                await asyncio.sleep(0)
                 if self._stopped:
                     return
 
