@@ -7,6 +7,13 @@ these together per ordered stream; :mod:`barsmith.runner` owns the loop and hand
 finished bars to the sinks (:mod:`barsmith.sinks`).
 """
 
+import os
+
+# barsmith does no linear algebra, but numpy (via pandas/pyarrow) starts OpenBLAS
+# worker threads that spin on spare cores -- cores a co-located broker needs. One
+# thread unless the user says otherwise; this must happen before numpy is imported.
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+
 from barsmith._version import __version__
 from barsmith.bars.bar import BAR_COLUMNS, Bar
 from barsmith.bars.spec import BarKind, BarSpec, parse_specs
