@@ -172,18 +172,22 @@ class Runner:
         """Periodic work between batches (idle rule, commits, drain mode); none in replay."""
 
     async def shutdown(self) -> RunSummary:
-        """Close what is final, flush the sinks, close them; in that order."""
+        """Close what is final, flush the sinks, :meth:`after_flush`, close; in that order."""
         if not self.force_exit:
             for engine in self.engines.values():
                 engine.finish()
                 await self._deliver(engine)
             for sink in self.sinks:
                 await sink.flush()
+            await self.after_flush()
         for sink in self.sinks:
             await sink.close()
         await self.reject_sink.close()
         await self.source.close()
         return RunSummary(self.total_stats(), time.perf_counter() - self._started, self.should_exit)
+
+    async def after_flush(self) -> None:
+        """Runs once everything is flushed at shutdown (the service commits offsets here)."""
 
     # -- work ------------------------------------------------------------------------
 

@@ -176,102 +176,15 @@ def _quote(rec: dict[str, Any], key: str, positive: bool) -> tuple[bool, float |
     return True, _number(rec, key, value, positive)
 
 
-_INF: Final = math.inf
-# Symbols already seen valid: their string checks run once per symbol, not per tick.
-_VALID_SYMBOLS: set[str] = set()
-_MAX_CACHED_SYMBOLS: Final = 1_000_000
-
-
 def decode_tick(rec: Any) -> Tick:
     """Validate one decoded msgpack object against the wire format.
 
     Raises :class:`MalformedTickError` with the reason and a one-line detail when the
-    record is malformed; never raises anything else.
+    record is malformed; never raises anything else. (Records read from files or
+    Kafka in the usual shape are decoded by :mod:`barsmith.ingest.fastwire` and do
+    not come here; this is the general path, and the definition it must agree with.)
     """
-    # Fast path for the common, well-formed message: floats for prices and
-    # quantities, nothing unusual. Anything else goes to the detailed validator,
-    # which gives the same answer for valid input and a precise reason otherwise.
-    # Typed locals let the compiled build (mypyc) use native int/float operations.
-    if type(rec) is not dict:
-        return _decode_checked(rec)
-    d: dict[Any, Any] = rec
-    raw_sym = d.get("sym")
-    raw_ts = d.get("ts")
-    raw_seq = d.get("seq")
-    if raw_sym not in _VALID_SYMBOLS or type(raw_ts) is not int or type(raw_seq) is not int:
-        return _decode_checked(rec)
-    sym: str = raw_sym
-    ts: int = raw_ts
-    seq: int = raw_seq
-    if not 0 < ts <= MAX_INT64 or not 0 <= seq <= MAX_INT64:
-        return _decode_checked(rec)
-    kind = d.get("kind")
-    if kind == _KIND_DELTA:
-        is_snapshot = False
-    elif kind == _KIND_SNAPSHOT:
-        is_snapshot = True
-    else:
-        return _decode_checked(rec)
-    present = 0
-    bid_px: float | None = None
-    bid_qty: float | None = None
-    ask_px: float | None = None
-    ask_qty: float | None = None
-    trade_px: float | None = None
-    trade_qty: float | None = None
-    number: float
-    value = d.get("bid_px", _MISSING)
-    if value is not _MISSING:
-        if value is not None:
-            if type(value) is not float:
-                return _decode_checked(rec)
-            number = value
-            if not 0.0 < number < _INF:
-                return _decode_checked(rec)
-            bid_px = number
-        present = BID_PX
-    value = d.get("bid_qty", _MISSING)
-    if value is not _MISSING:
-        if value is not None:
-            if type(value) is not float:
-                return _decode_checked(rec)
-            number = value
-            if not 0.0 <= number < _INF:
-                return _decode_checked(rec)
-            bid_qty = number
-        present |= BID_QTY
-    value = d.get("ask_px", _MISSING)
-    if value is not _MISSING:
-        if value is not None:
-            if type(value) is not float:
-                return _decode_checked(rec)
-            number = value
-            if not 0.0 < number < _INF:
-                return _decode_checked(rec)
-            ask_px = number
-        present |= ASK_PX
-    value = d.get("ask_qty", _MISSING)
-    if value is not _MISSING:
-        if value is not None:
-            if type(value) is not float:
-                return _decode_checked(rec)
-            number = value
-            if not 0.0 <= number < _INF:
-                return _decode_checked(rec)
-            ask_qty = number
-        present |= ASK_QTY
-    value = d.get("trade_px")
-    other = d.get("trade_qty")
-    if value is not None or other is not None:
-        if type(value) is not float or type(other) is not float:
-            return _decode_checked(rec)
-        number = value
-        qty: float = other
-        if not 0.0 < number < _INF or not 0.0 < qty < _INF:
-            return _decode_checked(rec)
-        trade_px = number
-        trade_qty = qty
-    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)
+    return _decode_checked(rec)
 
 
 def _decode_checked(rec: Any) -> Tick:
@@ -279,9 +192,6 @@ def _decode_checked(rec: Any) -> Tick:
     if type(rec) is not dict:
         raise MalformedTickError(RejectReason.NOT_A_MAP, f"expected a map, got {type(rec).__name__}")
     sym = _symbol(rec.get("sym", _MISSING))
-    if len(_VALID_SYMBOLS) >= _MAX_CACHED_SYMBOLS:
-        _VALID_SYMBOLS.clear()
-    _VALID_SYMBOLS.add(sym)
     ts = _integer("ts", rec.get("ts", _MISSING), 1)
     seq = _integer("seq", rec.get("seq", _MISSING), 0)
     kind = rec.get("kind", _MISSING)

@@ -160,19 +160,13 @@ class ServiceRunner(Runner):
         return summary
 
     async def _shutdown_in_order(self) -> RunSummary:
-        if not self.force_exit:
-            for engine in self.engines.values():
-                engine.finish()
-                await self.deliver(engine)
-            for sink in self.sinks:
-                await sink.flush()
-            await self.kafka_source.commit()
-            self.metrics.commits.inc()
-        for sink in self.sinks:
-            await sink.close()
-        await self.reject_sink.close()
-        await self.source.close()
-        return RunSummary(self.total_stats(), time.perf_counter() - self._started, False)
+        summary = await super().shutdown()
+        summary.interrupted = False  # a signalled service stops cleanly; replay reports 130
+        return summary
+
+    async def after_flush(self) -> None:
+        await self.kafka_source.commit()
+        self.metrics.commits.inc()
 
     # -- housekeeping jobs -------------------------------------------------------------
 
