@@ -190,7 +190,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
     settings = load_settings(args.config, **_service_overrides(args))
     configure_logging(settings.service.log_json)
     if settings.service.workers > 1:
-        argv = [a for a in (sys.argv[1:] if args.argv is None else args.argv)]
+        argv = list(sys.argv[1:] if args.argv is None else args.argv)
         return run_workers(settings, _strip_workers(argv))
     summary = run_service(settings)
     for line in summary.lines():

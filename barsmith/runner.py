@@ -176,7 +176,7 @@ class Runner:
         if not self.force_exit:
             for engine in self.engines.values():
                 engine.finish()
-                await self._deliver(engine)
+                await self.deliver(engine)
             for sink in self.sinks:
                 await sink.flush()
             await self.after_flush()
@@ -202,13 +202,10 @@ class Runner:
         for reject in batch.rejects:
             engine.reject(reject)
         engine.process(batch.records, batch.positions, batch.source)
-        await self._deliver(engine)
+        await self.deliver(engine)
 
     async def deliver(self, engine: Engine) -> None:
         """Hand an engine's finished bars and rejects to the sinks."""
-        await self._deliver(engine)
-
-    async def _deliver(self, engine: Engine) -> None:
         bars = engine.take_bars()
         if bars:
             for sink in self.sinks:

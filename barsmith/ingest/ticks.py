@@ -128,7 +128,7 @@ _KIND_SNAPSHOT: Final = "snapshot"
 _KIND_DELTA: Final = "delta"
 
 
-def _number(rec: dict[str, Any], key: str, value: Any, positive: bool) -> float:
+def _number(key: str, value: Any, positive: bool) -> float:
     """A finite int/float (bools are not numbers here), > 0 or >= 0."""
     kind = type(value)
     if kind is float:
@@ -173,7 +173,7 @@ def _quote(rec: dict[str, Any], key: str, positive: bool) -> tuple[bool, float |
         return False, None
     if value is None:
         return True, None
-    return True, _number(rec, key, value, positive)
+    return True, _number(key, value, positive)
 
 
 def decode_tick(rec: Any) -> Tick:
@@ -184,11 +184,6 @@ def decode_tick(rec: Any) -> Tick:
     Kafka in the usual shape are decoded by :mod:`barsmith.ingest.fastwire` and do
     not come here; this is the general path, and the definition it must agree with.)
     """
-    return _decode_checked(rec)
-
-
-def _decode_checked(rec: Any) -> Tick:
-    """The detailed validator: every check, with a precise reason on failure."""
     if type(rec) is not dict:
         raise MalformedTickError(RejectReason.NOT_A_MAP, f"expected a map, got {type(rec).__name__}")
     sym = _symbol(rec.get("sym", _MISSING))
@@ -230,6 +225,6 @@ def _decode_checked(rec: Any) -> Tick:
             raise MalformedTickError(
                 RejectReason.HALF_TRADE, f"a trade needs both trade_px and trade_qty; {missing} is missing"
             )
-        trade_px = _number(rec, "trade_px", raw_px, True)
-        trade_qty = _number(rec, "trade_qty", raw_qty, True)
+        trade_px = _number("trade_px", raw_px, True)
+        trade_qty = _number("trade_qty", raw_qty, True)
     return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)

@@ -72,12 +72,11 @@ class ServiceRunner(Runner):
         source: KafkaSource,
         sinks: Sequence[BarSink],
         reject_sink: RejectSink,
-        metrics: ServiceMetrics | None = None,
     ) -> None:
         self.settings = settings
         self.kafka_source = source
         self._retired = EngineStats()  # counters of engines whose partitions were revoked
-        self.metrics = metrics or ServiceMetrics(
+        self.metrics = ServiceMetrics(
             PartitionView(self.total_stats, lambda: self.engines, self._lags),
         )
         for sink in sinks:
