@@ -96,6 +96,14 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--metrics-port", type=int, metavar="PORT", help="HTTP port for /metrics (0: any free)")
     run.add_argument("--workers", type=_positive_int, metavar="N", help="processes in the group on this host")
     run.add_argument("--exit-when-idle", type=_duration_ms, metavar="DUR", help="drain mode: exit after DUR idle")
+    run.add_argument(
+        "--delivery",
+        choices=["exactly-once", "at-least-once"],
+        help="output guarantee (default exactly-once; at-least-once may repeat bars after a crash)",
+    )
+    run.add_argument(
+        "--checkpoint-interval", type=_duration_ms, metavar="DUR", help="exactly-once: checkpoint cadence (default 2s)"
+    )
     run.add_argument("--log-json", action="store_true", default=None, help="log lines as JSON")
     run.set_defaults(handler=_cmd_run)
 
@@ -173,7 +181,13 @@ def _service_overrides(args: argparse.Namespace) -> dict[str, object]:
         service["exit_when_idle_s"] = args.exit_when_idle / 1000.0
     if args.log_json:
         service["log_json"] = True
+    if args.delivery is not None:
+        service["delivery"] = args.delivery
+    checkpoint: dict[str, object] = {}
+    if args.checkpoint_interval is not None:
+        checkpoint["interval_s"] = args.checkpoint_interval / 1000.0
     return {
+        "checkpoint": checkpoint or None,
         "bars": args.bars,
         "lateness_ms": args.lateness,
         "kafka": kafka or None,

@@ -66,6 +66,25 @@ class EngineStats:
         self.rejected.update(other.rejected)
         self.bars.update(other.bars)
 
+    def since(self, earlier: EngineStats) -> EngineStats:
+        """The counts added after ``earlier`` (a copy of these counters taken before)."""
+        out = EngineStats(
+            self.records - earlier.records,
+            self.accepted - earlier.accepted,
+            self.duplicates - earlier.duplicates,
+            self.gaps - earlier.gaps,
+            self.late - earlier.late,
+            self.time_regressions - earlier.time_regressions,
+        )
+        out.rejected = self.rejected - earlier.rejected
+        out.bars = self.bars - earlier.bars
+        return out
+
+    def copy(self) -> EngineStats:
+        out = EngineStats()
+        out.add(self)
+        return out
+
 
 class _SymbolState:
     """A symbol's book, its open bar per spec, and the spread in effect since when."""
@@ -120,6 +139,10 @@ class Engine:
 
     def books(self) -> Iterable[SymbolBook]:
         return (state.book for state in self._symbols.values())
+
+    def open_bar_count(self) -> int:
+        """Bars being built (one per symbol and spec at most)."""
+        return sum(1 for state in self._symbols.values() for bar in state.bars if bar is not None)
 
     def process(self, records: Sequence[Any], positions: Sequence[int], source: str) -> None:
         """Feed decoded msgpack records (tick maps, or arrays of them) in stream order.

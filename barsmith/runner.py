@@ -174,17 +174,21 @@ class Runner:
     async def shutdown(self) -> RunSummary:
         """Close what is final, flush the sinks, :meth:`after_flush`, close; in that order."""
         if not self.force_exit:
-            for engine in self.engines.values():
-                engine.finish()
-                await self.deliver(engine)
-            for sink in self.sinks:
-                await sink.flush()
-            await self.after_flush()
+            await self.final_flush()
         for sink in self.sinks:
             await sink.close()
         await self.reject_sink.close()
         await self.source.close()
         return RunSummary(self.total_stats(), time.perf_counter() - self._started, self.should_exit)
+
+    async def final_flush(self) -> None:
+        """Close open bars (input ended), hand them over, flush the sinks, :meth:`after_flush`."""
+        for stream, engine in self.engines.items():
+            engine.finish()
+            await self.deliver(stream, engine)
+        for sink in self.sinks:
+            await sink.flush()
+        await self.after_flush()
 
     async def after_flush(self) -> None:
         """Runs once everything is flushed at shutdown (the service commits offsets here)."""
@@ -202,14 +206,14 @@ class Runner:
         for reject in batch.rejects:
             engine.reject(reject)
         engine.process(batch.records, batch.positions, batch.source)
-        await self.deliver(engine)
+        await self.deliver(batch.stream, engine)
 
-    async def deliver(self, engine: Engine) -> None:
+    async def deliver(self, stream: str, engine: Engine) -> None:
         """Hand an engine's finished bars and rejects to the sinks."""
         bars = engine.take_bars()
         if bars:
             for sink in self.sinks:
-                await sink.publish(bars)
+                await sink.publish(stream, bars)
         rejects = engine.take_rejects()
         if rejects:
             await self.reject_sink.write(rejects)

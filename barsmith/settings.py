@@ -9,6 +9,7 @@ Cheap checks happen when the object is built; every problem is reported at once 
 from __future__ import annotations
 
 import os
+from enum import StrEnum
 from pathlib import Path
 from typing import Any, Literal
 
@@ -76,7 +77,20 @@ class KafkaSettings(BaseModel):
     commit_interval_s: float = Field(5.0, gt=0)
     output_compression: Literal["zstd", "lz4", "gzip", "none"] = "zstd"
     output_linger_ms: int = Field(5, ge=0, le=10_000)
+    session_timeout_ms: int = Field(10_000, ge=1_000, le=300_000, description="group member declared dead after")
+    state_topic: str | None = Field(None, description="checkpoints (compacted); default <group_id>.barsmith-state")
+    state_partitions: int = Field(8, gt=0, description="partitions if the service creates the state topic")
+    transaction_timeout_ms: int = Field(60_000, ge=1_000, le=900_000)
     security: SecuritySettings = Field(default_factory=SecuritySettings)
+
+
+class CheckpointSettings(BaseModel):
+    """Exactly-once delivery: how often each partition checkpoints and commits."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    interval_s: float = Field(2.0, gt=0, le=3_600, description="a partition checkpoints at least this often")
+    every_messages: int = Field(200_000, gt=0, description="...and after this many messages, whichever first")
 
 
 class MetricsSettings(BaseModel):
@@ -88,6 +102,13 @@ class MetricsSettings(BaseModel):
     port: int | None = Field(9464, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
 
 
+class Delivery(StrEnum):
+    """What the live service promises about its output."""
+
+    EXACTLY_ONCE = "exactly-once"  # transactions + checkpoints: no bar missing or doubled
+    AT_LEAST_ONCE = "at-least-once"  # offsets committed after flush: a crash may repeat bars
+
+
 class ServiceSettings(BaseModel):
     """The long-running daemon's behaviour."""
 
@@ -97,6 +118,7 @@ class ServiceSettings(BaseModel):
     shutdown_timeout_s: float = Field(20.0, gt=0)
     housekeeping_interval_s: float = Field(0.5, gt=0)
     exit_when_idle_s: float | None = Field(None, gt=0, description="drain mode: exit after this long with no input")
+    delivery: Delivery = Field(Delivery.EXACTLY_ONCE, description="exactly-once (default) or at-least-once")
     workers: int = Field(1, ge=1, le=64)
     log_json: bool = False
 
@@ -114,6 +136,7 @@ class Settings(BaseSettings):
     kafka: KafkaSettings = Field(default_factory=KafkaSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
     service: ServiceSettings = Field(default_factory=ServiceSettings)
+    checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
 
     @field_validator("bars")
     @classmethod
@@ -126,6 +149,10 @@ class Settings(BaseSettings):
 
     def bar_specs(self) -> list[BarSpec]:
         return parse_specs(self.bars)
+
+    @property
+    def state_topic(self) -> str:
+        return self.kafka.state_topic or f"{self.kafka.group_id}.barsmith-state"
 
     @property
     def lateness_ns(self) -> int:

@@ -18,10 +18,10 @@ from barsmith.errors import ConfigError
 from barsmith.ingest.rejects import Reject
 from barsmith.runner import RunSummary
 from barsmith.service.daemon import ServiceRunner
-from barsmith.settings import Settings
+from barsmith.settings import Delivery, Settings
 from barsmith.sinks.base import BarSink, RejectSink
 from barsmith.sinks.kafka import KafkaBarSink
-from barsmith.sinks.parquet import ParquetBarSink, ParquetRejectSink
+from barsmith.sinks.parquet import ParquetBarSink, ParquetPartSink, ParquetRejectSink
 from barsmith.sources.kafka import KafkaSource
 
 log = logging.getLogger("barsmith.service")
@@ -85,12 +85,24 @@ def build_service(settings: Settings) -> ServiceRunner:
         sinks.append(KafkaBarSink(settings.kafka, settings.kafka.output_topic))
     prefix = f"{settings.kafka.client_id}-{socket.gethostname()}-{os.getpid()}-{time.time_ns() // 1_000_000}-"
     reject_sink: RejectSink = LogRejectSink()
-    if settings.parquet.dir is not None:
-        settings.parquet.dir.mkdir(parents=True, exist_ok=True)
-        pq = settings.parquet
+    pq = settings.parquet
+    if pq.dir is not None and settings.service.delivery is Delivery.EXACTLY_ONCE:
+        # Parts per input partition, committed with its checkpoints; rejects beside them.
+        pq.dir.mkdir(parents=True, exist_ok=True)
+        part_sink = ParquetPartSink(
+            pq.dir,
+            specs,
+            roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
+            carry_max_rows=pq.row_group_rows,
+            compression=pq.compression,
+        )
+        sinks.append(part_sink)
+        reject_sink = part_sink
+    elif pq.dir is not None:
+        pq.dir.mkdir(parents=True, exist_ok=True)
         sinks.append(
             ParquetBarSink(
-                pq.dir,  # type: ignore[arg-type]
+                pq.dir,
                 specs,
                 row_group_rows=pq.row_group_rows,
                 max_file_rows=pq.max_file_rows,
@@ -99,7 +111,7 @@ def build_service(settings: Settings) -> ServiceRunner:
                 file_prefix=prefix,
             )
         )
-        reject_sink = ParquetRejectSink(pq.dir, f"_rejects-{prefix.rstrip('-')}.parquet")  # type: ignore[arg-type]
+        reject_sink = ParquetRejectSink(pq.dir, f"_rejects-{prefix.rstrip('-')}.parquet")
     return ServiceRunner(settings, KafkaSource(settings.kafka), sinks, reject_sink)
 
 

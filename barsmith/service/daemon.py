@@ -5,13 +5,20 @@ daemon's housekeeping (one tick, every ``housekeeping_interval_s``):
 
 * the idle rule: a partition that received nothing for ``idle_close_s`` of wall time
   closes the time bars whose end is at least that far behind the wall clock;
-* offset commits every ``commit_interval_s``, always after the sinks have flushed
-  what the committed records produced;
+* exactly-once delivery (the default): per-partition checkpoints, each one
+  transaction with the partition's bars and offset (see
+  :mod:`barsmith.service.exactly_once`); at-least-once: offset commits every
+  ``commit_interval_s``, always after the sinks have flushed what the committed
+  records produced;
 * drain mode (``exit_when_idle_s``): exit once no record arrived for that long.
 
-Shutdown (SIGTERM/SIGINT, drain mode, or input ended) runs in a fixed order under
-``shutdown_timeout_s``: stop fetching → close open bars (marked incomplete) → flush
-sinks → commit → close connections. A second signal skips the flush.
+Shutdown runs in a fixed order under ``shutdown_timeout_s``: stop fetching → then,
+exactly-once, a final checkpoint per partition (open bars stay open in it, to be
+continued by the next run; drain mode first closes them, marked incomplete, as
+replay does at the end of its input); at-least-once, close open bars (marked
+incomplete) → flush sinks → commit → close connections. A second signal skips the
+flush. Rebalance callbacks run in the consumer's task, so engine work and
+checkpoints hold one lock.
 """
 
 from __future__ import annotations
@@ -20,15 +27,17 @@ import asyncio
 import logging
 import time
 from collections.abc import Sequence
+from typing import cast
 
 from barsmith.bars.bar import Bar
-from barsmith.engine import EngineStats
+from barsmith.engine import Engine, EngineStats
 from barsmith.errors import SinkError
 from barsmith.runner import Runner, RunSummary
+from barsmith.service.exactly_once import ExactlyOnce, is_bus_failure
 from barsmith.service.http import HealthServer
 from barsmith.service.metrics import PartitionView, ServiceMetrics
-from barsmith.settings import Settings
-from barsmith.sinks.base import BarSink, RejectSink
+from barsmith.settings import Delivery, Settings
+from barsmith.sinks.base import BarSink, CheckpointedSink, RejectSink
 from barsmith.sinks.kafka import KafkaBarSink
 from barsmith.sources.base import RecordBatch
 from barsmith.sources.kafka import KafkaSource
@@ -44,9 +53,9 @@ class _CountingSink:
         self.name = inner.name
         self._metrics = metrics
 
-    async def publish(self, bars: Sequence[Bar]) -> None:
+    async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         try:
-            await self.inner.publish(bars)
+            await self.inner.publish(stream, bars)
         except SinkError:
             self._metrics.sink_errors.labels(sink=self.name).inc()
             raise
@@ -62,6 +71,18 @@ class _CountingSink:
     async def close(self) -> None:
         await self.inner.close()
 
+    async def prepare(self, stream: str, offset: int, final: bool) -> object:
+        return await self.inner.prepare(stream, offset, final)  # type: ignore[attr-defined]
+
+    async def committed(self, stream: str, state: object) -> None:
+        await self.inner.committed(stream, state)  # type: ignore[attr-defined]
+
+    async def restore(self, stream: str, state: object, offset: int) -> None:
+        await self.inner.restore(stream, state, offset)  # type: ignore[attr-defined]
+
+    def release(self, stream: str) -> None:
+        self.inner.release(stream)  # type: ignore[attr-defined]
+
 
 class ServiceRunner(Runner):
     """The daemon: a :class:`Runner` over a :class:`KafkaSource` with housekeeping."""
@@ -76,6 +97,7 @@ class ServiceRunner(Runner):
         self.settings = settings
         self.kafka_source = source
         self._retired = EngineStats()  # counters of engines whose partitions were revoked
+        self._baselines: dict[str, EngineStats] = {}  # restored counters, per stream
         self.metrics = ServiceMetrics(
             PartitionView(self.total_stats, lambda: self.engines, self._lags),
         )
@@ -94,6 +116,17 @@ class ServiceRunner(Runner):
         source.on_revoked = self._on_revoked
         source.on_assigned = self._on_assigned
         self.counted_sinks = counted
+        self.exactly_once: ExactlyOnce | None = None
+        if settings.service.delivery is Delivery.EXACTLY_ONCE:
+            self.exactly_once = ExactlyOnce(self, [cast(CheckpointedSink, sink) for sink in counted])
+            source.pause_on_assign = True
+            for sink in sinks:
+                if isinstance(sink, KafkaBarSink):
+                    sink.producer_for = self.exactly_once.producer_for
+        # Engine work, checkpoints and rebalance callbacks (run by the consumer's own
+        # task) take turns: a partition is never revoked halfway through a batch.
+        self._lock = asyncio.Lock()
+        self._draining = False
         self._http: HealthServer | None = None
         self._last_commit = time.monotonic()
         self._last_input = time.monotonic()
@@ -121,27 +154,61 @@ class ServiceRunner(Runner):
 
                 await ensure_topic(self.settings.kafka, sink.inner.topic, self.settings.kafka.output_partitions)
                 await sink.inner.start()
+        if self.exactly_once is not None:
+            await self.exactly_once.start()
         await self.kafka_source.start()
         log.info(
-            "consuming %s as group %s; bars %s",
+            "consuming %s as group %s; bars %s; delivery %s",
             ", ".join(self.settings.kafka.input_topics),
             self.settings.kafka.group_id,
             ", ".join(self.settings.bars),
+            self.settings.service.delivery.value,
         )
 
     async def process_batch(self, batch: RecordBatch) -> None:
-        await super().process_batch(batch)
+        async with self._lock:
+            eos = self.exactly_once
+            if eos is not None and not eos.accepts(batch.stream):
+                return  # revoked, fenced or recovering: the restore seeks back to this input
+            await super().process_batch(batch)
+            if eos is not None:
+                await eos.after_batch(batch.stream)
         self._last_input = time.monotonic()
+
+    async def deliver(self, stream: str, engine: Engine) -> None:
+        eos = self.exactly_once
+        if eos is None:
+            await super().deliver(stream, engine)
+            return
+        try:
+            await super().deliver(stream, engine)
+        except SinkError as exc:
+            if not is_bus_failure(exc):
+                raise
+            await eos.fail(stream, exc)
+        else:
+            owner = eos.owners.get(stream)
+            if owner is not None:
+                owner.dirty = True
+
+    def engine_for(self, stream: str) -> Engine:
+        if self.exactly_once is not None:
+            return self.engines[stream]  # installed by the restore on assignment
+        return super().engine_for(stream)
 
     async def housekeeping(self, now: float) -> None:
         service = self.settings.service
-        await self._apply_idle_rule(now)
-        if now - self._last_commit >= self.settings.kafka.commit_interval_s:
-            await self._flush_and_commit()
+        async with self._lock:
+            await self._apply_idle_rule(now)
+            if self.exactly_once is not None:
+                await self.exactly_once.housekeeping(now)
+            elif now - self._last_commit >= self.settings.kafka.commit_interval_s:
+                await self._flush_and_commit()
         drain = service.exit_when_idle_s
         if drain is not None and now - self._last_input >= drain and not self.should_exit:
             log.info("no input for %.1f s: draining and exiting", drain)
             self.should_exit = True
+            self._draining = True
             self.source.stop()
 
     async def shutdown(self) -> RunSummary:
@@ -163,6 +230,26 @@ class ServiceRunner(Runner):
         summary.interrupted = False  # a signalled service stops cleanly; replay reports 130
         return summary
 
+    async def final_flush(self) -> None:
+        eos = self.exactly_once
+        if eos is None:
+            await super().final_flush()
+            return
+        async with self._lock:
+            if self._draining:  # end of input, as replay: close what is open
+                for stream, engine in self.engines.items():
+                    if eos.accepts(stream):
+                        engine.finish()
+            await eos.checkpoint_all(final=True)
+            await eos.close()
+
+    async def abort(self) -> None:
+        if self.exactly_once is not None:
+            await self.exactly_once.close()
+        await super().abort()
+        if self._http is not None:
+            await self._http.close()
+
     async def after_flush(self) -> None:
         await self.kafka_source.commit()
         self.metrics.commits.inc()
@@ -176,9 +263,9 @@ class ServiceRunner(Runner):
         for name, state in self.kafka_source.partitions.items():
             if now - state.last_record_wall >= idle_s:
                 engine = self.engines.get(name)
-                if engine is not None:
+                if engine is not None and (self.exactly_once is None or self.exactly_once.accepts(name)):
                     engine.close_through(limit_ns)
-                    await self.deliver(engine)
+                    await self.deliver(name, engine)
 
     async def _flush_and_commit(self, streams: list[str] | None = None) -> None:
         for sink in self.sinks:
@@ -189,24 +276,48 @@ class ServiceRunner(Runner):
         self._last_commit = time.monotonic()
 
     async def _on_revoked(self, streams: list[str]) -> None:
-        """Before partitions leave: publish what is final, flush, commit, drop their state.
-        Open bars of a revoked partition are not carried over (exactly-once hand-over
-        of open bars is the checkpointing feature's job)."""
-        for name in streams:
-            engine = self.engines.get(name)
-            if engine is not None:
-                await self.deliver(engine)
-        await self._flush_and_commit(streams)
-        for name in streams:
-            engine = self.engines.pop(name, None)
-            if engine is not None:
-                self._retired.add(engine.stats)
-                log.warning("partition %s revoked; its open bars were dropped", name)
+        """Before partitions leave. Exactly-once: a final checkpoint each, from which the
+        next owner continues, open bars included. At-least-once: publish what is final,
+        flush, commit, drop their state (open bars are lost to the next owner)."""
+        async with self._lock:
+            if self.exactly_once is not None:
+                await self.exactly_once.revoke(streams)
+                for name in streams:
+                    self.retire(name)
+                return
+            for name in streams:
+                engine = self.engines.get(name)
+                if engine is not None:
+                    await self.deliver(name, engine)
+            await self._flush_and_commit(streams)
+            for name in streams:
+                if self.retire(name):
+                    log.warning("partition %s revoked; its open bars were dropped", name)
 
     async def _on_assigned(self, streams: list[str]) -> None:
         # Drain mode counts idle time from the (re)assignment, not from start-up: a
         # member waiting for the group to settle has not been idle on its input.
         self._last_input = time.monotonic()
+        if self.exactly_once is not None:
+            async with self._lock:
+                try:
+                    await self.exactly_once.assign(streams)
+                except Exception as exc:  # e.g. an unreadable checkpoint: stop, say why
+                    self.kafka_source.fail(exc)
+            self._last_input = time.monotonic()
+
+    def retire(self, stream: str) -> bool:
+        """Forget ``stream``'s engine, keeping its counters in the run's totals."""
+        engine = self.engines.pop(stream, None)
+        baseline = self._baselines.pop(stream, None)
+        if engine is not None:
+            self._retired.add(engine.stats.since(baseline) if baseline is not None else engine.stats)
+        return engine is not None
+
+    def set_baseline(self, stream: str, stats: EngineStats) -> None:
+        """A restored engine brings the stream's counters so far: this process reports
+        only what it adds to them."""
+        self._baselines[stream] = stats.copy()
 
     def _observe_publish(self, bar: Bar, delay_s: float) -> None:
         self.metrics.publish_delay.observe(delay_s)
@@ -216,6 +327,9 @@ class ServiceRunner(Runner):
         return {name: (s.topic, s.partition, s.lag) for name, s in self.kafka_source.partitions.items()}
 
     def total_stats(self) -> EngineStats:
-        total = super().total_stats()
+        total = EngineStats()
+        for stream, engine in self.engines.items():
+            baseline = self._baselines.get(stream)
+            total.add(engine.stats.since(baseline) if baseline is not None else engine.stats)
         total.add(self._retired)
         return total

@@ -18,6 +18,7 @@ from barsmith.engine import Engine, EngineStats
 
 # Close-to-publish delays: sub-millisecond up to tens of seconds.
 _DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
+_SIZE_BUCKETS = tuple(float(2**k) for k in range(10, 27, 2))  # 1 KiB .. 64 MiB
 _EVENT_BUCKETS = (0.1, 0.25, 0.5, 1.0, 2.0, 3.0, 5.0, 10.0, 30.0, 60.0, 120.0, 300.0)
 
 
@@ -107,6 +108,36 @@ class ServiceMetrics:
             "barsmith_event_to_publish_seconds",
             "Wall clock at publish minus the bar's end (event time); meaningful when event time is wall time",
             buckets=_EVENT_BUCKETS,
+            registry=self.registry,
+        )
+
+        self.transactions = Counter(
+            "barsmith_transactions",
+            "Exactly-once checkpoint transactions, by outcome (committed, aborted)",
+            ["outcome"],
+            registry=self.registry,
+        )
+        self.checkpoint_bytes = Histogram(
+            "barsmith_checkpoint_size_bytes",
+            "Size of each committed partition checkpoint",
+            buckets=_SIZE_BUCKETS,
+            registry=self.registry,
+        )
+        self.checkpoint_seconds = Histogram(
+            "barsmith_checkpoint_duration_seconds",
+            "Wall time of one partition checkpoint: staging, encoding and the transaction's commit",
+            buckets=_DELAY_BUCKETS,
+            registry=self.registry,
+        )
+        self.restores = Counter(
+            "barsmith_checkpoint_restores",
+            "Engine states restored from a checkpoint, by reason (assignment, rewind)",
+            ["reason"],
+            registry=self.registry,
+        )
+        self.offsets_rewound = Counter(
+            "barsmith_offsets_rewound",
+            "Input records consumed again because a restore moved a partition back",
             registry=self.registry,
         )
 

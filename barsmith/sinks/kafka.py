@@ -3,6 +3,10 @@
 Key: the symbol (UTF-8). Value: a msgpack map with exactly the Parquet bar columns,
 timestamps as int ns since the epoch. Header ``spec``: the bar spec. The producer
 is idempotent (no duplicates from its own retries) and compresses batches.
+
+Under exactly-once delivery the sink owns no producer: each input partition's bars
+go through that partition's transactional producer (``producer_for(stream)``) and
+become visible to ``read_committed`` readers when its checkpoint commits.
 """
 
 from __future__ import annotations
@@ -45,6 +49,7 @@ class KafkaBarSink:
         kafka: KafkaSettings,
         topic: str,
         on_published: Callable[[Bar, float], None] | None = None,
+        producer_for: Callable[[str], Any] | None = None,
     ) -> None:
         self._kafka = kafka
         self.topic = topic
@@ -53,8 +58,13 @@ class KafkaBarSink:
         self._error: str | None = None
         self.on_published = on_published
         self.published = 0
+        self.producer_for = producer_for
+        self._stream_inflight: dict[str, set[asyncio.Future[Any]]] = {}
+        self._stream_failures: dict[str, str] = {}
 
     async def start(self) -> None:
+        if self.producer_for is not None:
+            return  # the partitions' transactional producers are started by their owner
         from aiokafka import AIOKafkaProducer
         from aiokafka.errors import KafkaError
 
@@ -75,12 +85,16 @@ class KafkaBarSink:
             await self._producer.stop()
             raise SinkError(f"cannot start the bar producer: {exc}") from exc
 
-    async def publish(self, bars: Sequence[Bar]) -> None:
+    async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         self._raise_delivery_error()
-        if self._producer is None:
-            await self.start()
+        if self.producer_for is not None:
+            producer = self.producer_for(stream)
+        else:
+            if self._producer is None:
+                await self.start()
+            producer = self._producer
         closed_at = time.monotonic()
-        send = self._producer.send
+        send = producer.send
         try:
             for bar in bars:
                 future = await send(
@@ -90,18 +104,23 @@ class KafkaBarSink:
                     headers=[("spec", bar.spec.encode("utf-8"))],
                 )
                 self._inflight.add(future)
-                future.add_done_callback(functools.partial(self._delivered, bar, closed_at))
+                if self.producer_for is not None:
+                    self._stream_inflight.setdefault(stream, set()).add(future)
+                future.add_done_callback(functools.partial(self._delivered, stream, bar, closed_at))
         except Exception as exc:
             raise SinkError(f"cannot publish bars to {self.topic}: {exc}") from exc
 
-    def _delivered(self, bar: Bar, closed_at: float, future: asyncio.Future[Any]) -> None:
+    def _delivered(self, stream: str, bar: Bar, closed_at: float, future: asyncio.Future[Any]) -> None:
         self._inflight.discard(future)
-        if future.cancelled():
-            self._error = self._error or "delivery cancelled"
-            return
-        exc = future.exception()
-        if exc is not None:
-            self._error = self._error or str(exc)
+        if self.producer_for is not None:
+            self._stream_inflight.get(stream, set()).discard(future)
+        failure = "delivery cancelled" if future.cancelled() else future.exception()
+        if failure is not None:
+            if self.producer_for is not None:
+                # In a transaction: the partition's next checkpoint must not commit.
+                self._stream_failures.setdefault(stream, str(failure))
+            else:
+                self._error = self._error or str(failure)
             return
         self.published += 1
         if self.on_published is not None:
@@ -113,8 +132,6 @@ class KafkaBarSink:
             raise SinkError(f"the broker did not take bars for {self.topic}: {error}")
 
     async def flush(self) -> None:
-        if self._producer is None:
-            return
         if self._inflight:
             await asyncio.gather(*list(self._inflight), return_exceptions=True)
         self._raise_delivery_error()
@@ -127,3 +144,30 @@ class KafkaBarSink:
         finally:
             await self._producer.stop()
             self._producer = None
+
+    # -- the checkpoint protocol: the partition's transaction carries the bars -----------
+
+    async def prepare(self, stream: str, offset: int, final: bool) -> None:
+        """Wait for the partition's bars to be acknowledged; refuse the checkpoint if any
+        was not (a transaction must not commit without one of its bars)."""
+        pending = self._stream_inflight.get(stream)
+        if pending:
+            await asyncio.gather(*list(pending), return_exceptions=True)
+        failure = self._stream_failures.pop(stream, None)
+        if failure is not None:
+            from aiokafka.errors import KafkaError
+
+            raise SinkError(f"the broker did not take bars of {stream}: {failure}") from KafkaError(failure)
+        return None
+
+    async def committed(self, stream: str, state: Any) -> None:
+        return None
+
+    async def restore(self, stream: str, state: Any, offset: int) -> None:
+        """The partition rewinds: what failed belonged to the aborted transaction."""
+        self._stream_failures.pop(stream, None)
+        self._stream_inflight.pop(stream, None)
+
+    def release(self, stream: str) -> None:
+        self._stream_failures.pop(stream, None)
+        self._stream_inflight.pop(stream, None)

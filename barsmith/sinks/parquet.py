@@ -21,6 +21,7 @@ from barsmith.bars.bar import BAR_COLUMNS, Bar
 from barsmith.bars.spec import BarSpec
 from barsmith.errors import ConfigError, SinkError
 from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
+from barsmith.ingest.ticks import RejectReason
 
 _TS: Final = pa.timestamp("ns", tz="UTC")
 
@@ -140,7 +141,7 @@ class ParquetBarSink:
         self._counter: dict[str, int] = dict.fromkeys(self._stems, 0)
         self.files_written: list[Path] = []
 
-    async def publish(self, bars: Sequence[Bar]) -> None:
+    async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         for bar in bars:
             self._pending[bar.spec].append(bar)
         for text, pending in self._pending.items():
@@ -215,3 +216,187 @@ class ParquetRejectSink:
             self._file.commit()
         except OSError as exc:
             raise SinkError(f"cannot finish {self.path}: {exc}") from exc
+
+
+def stream_file_tag(stream: str) -> str:
+    """``ticks[3]`` → ``ticks.p3``: a stream name that is safe in a file name."""
+    topic, bracket, rest = stream.partition("[")
+    return f"{topic}.p{rest.rstrip(']')}" if bracket else stream
+
+
+class _PartBuffer:
+    """What one input partition produced since its last Parquet part."""
+
+    __slots__ = ("bars", "from_offset", "opened_at", "rejects")
+
+    def __init__(self, from_offset: int) -> None:
+        self.bars: list[Bar] = []
+        self.rejects: list[Reject] = []
+        self.from_offset = from_offset
+        self.opened_at = time.monotonic()
+
+
+class ParquetPartSink:
+    """Exactly-once Parquet output: each input partition's bars (and rejects) in parts
+    that commit together with the partition's checkpoints.
+
+    A part holds what the partition produced between two checkpoints' input offsets
+    and is named after them, ``<spec>-<topic>.p<partition>-<from>-<to>.parquet``
+    (rejects: ``_rejects-<topic>.p<partition>-<from>-<to>.parquet``), so a reader can
+    tell which input every file covers. The checkpoint protocol, per partition:
+
+    1. :meth:`prepare` — before the transaction: if a part is due (``roll_interval_s``
+       since the last one, ``row_group_rows`` bars buffered, or ``final``), write it
+       under hidden temporary names and fsync; otherwise return the buffered bars so
+       that they travel inside the checkpoint. The result goes into the checkpoint.
+    2. the transaction commits (bars on the bus, checkpoint, offsets);
+    3. :meth:`committed` — rename the part into place.
+
+    On assignment or after a failed transaction, :meth:`restore` applies the last
+    committed checkpoint: it renames the parts it names (a crash between 2 and 3),
+    deletes any other temporary part of that partition, and reloads the carried bars.
+    """
+
+    name = "parquet"
+
+    def __init__(
+        self,
+        directory: Path,
+        specs: Sequence[BarSpec],
+        *,
+        roll_interval_s: float,
+        carry_max_rows: int = 4_096,
+        compression: str = "zstd",
+        keep_rejects: bool = True,
+    ) -> None:
+        self.directory = directory
+        bars_table([])  # pay pyarrow's lazy pandas import at start-up (see ParquetBarSink)
+        self._stems = {spec.text: spec.file_stem for spec in specs}
+        self._roll_interval_s = roll_interval_s
+        self._carry_max_rows = carry_max_rows
+        self._compression = compression
+        self._keep_rejects = keep_rejects
+        self._buffers: dict[str, _PartBuffer] = {}
+        self.files_written: list[Path] = []
+
+    # -- BarSink / RejectSink --------------------------------------------------------
+
+    async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
+        self._buffer(stream).bars.extend(bars)
+
+    async def write(self, rejects: Sequence[Reject]) -> None:
+        if self._keep_rejects:
+            for reject in rejects:
+                self._buffer(reject.source).rejects.append(reject)
+
+    async def flush(self) -> None:
+        """Nothing: parts become durable through :meth:`prepare` and :meth:`committed`."""
+
+    async def close(self) -> None:
+        """Buffered bars not yet in a part live on in the last checkpoint."""
+
+    # -- the checkpoint protocol ---------------------------------------------------------
+
+    async def prepare(self, stream: str, offset: int, final: bool) -> dict[str, Any]:
+        """Make the partition's output up to ``offset`` durable or carry it; the result
+        belongs in the checkpoint."""
+        buffer = self._buffer(stream)
+        rows = len(buffer.bars) + len(buffer.rejects)
+        due = final or len(buffer.bars) >= self._carry_max_rows or len(buffer.rejects) >= self._carry_max_rows
+        due = due or (rows > 0 and time.monotonic() - buffer.opened_at >= self._roll_interval_s)
+        if not due or rows == 0:
+            return {
+                "from": buffer.from_offset,
+                "parts": [],
+                "bars": [list(bar.as_dict().values()) for bar in buffer.bars],
+                "rejects": [_reject_row(r) for r in buffer.rejects],
+            }
+        parts = []
+        try:
+            for text, bars in self._by_spec(buffer.bars).items():
+                name = f"{self._stems[text]}-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
+                parts.append(self._write_temp(name, bars_table(bars)))
+            if buffer.rejects:
+                name = f"_rejects-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
+                table = pa.Table.from_pylist([r.as_row() for r in buffer.rejects], schema=REJECT_SCHEMA)
+                parts.append(self._write_temp(name, table))
+        except OSError as exc:
+            raise SinkError(f"cannot write bars to {self.directory}: {exc}") from exc
+        return {"from": offset, "parts": parts, "bars": [], "rejects": []}
+
+    async def committed(self, stream: str, state: dict[str, Any]) -> None:
+        """The checkpoint holding ``state`` committed: publish its parts."""
+        if state["parts"]:
+            self._publish_parts(state["parts"])
+            # A fresh, empty buffer starting at the checkpoint's offset.
+            self._buffers[stream] = _PartBuffer(int(state["from"]))
+
+    async def restore(self, stream: str, state: dict[str, Any] | None, offset: int) -> None:
+        """Continue ``stream`` from its last committed checkpoint's ``state`` (None: from
+        scratch at ``offset``)."""
+        keep = set(state["parts"]) if state else set()
+        tag = stream_file_tag(stream)
+        for path in self.directory.glob(f".*-{tag}-*.parquet.tmp"):
+            final_name = path.name[1 : -len(".tmp")]
+            if final_name in keep:
+                continue
+            if final_name.partition(f"-{tag}-")[0] in {*self._stems.values(), "_rejects"}:
+                path.unlink(missing_ok=True)  # written for a checkpoint that never committed
+        if state is None:
+            self._buffers[stream] = _PartBuffer(offset)
+            return
+        self._publish_parts(state["parts"])
+        buffer = self._buffers[stream] = _PartBuffer(int(state["from"]))
+        buffer.bars = [Bar(*row) for row in state["bars"]]
+        buffer.rejects = [_reject_from_row(row) for row in state["rejects"]]
+
+    def release(self, stream: str) -> None:
+        """The partition went to another owner, which continues from its checkpoint."""
+        self._buffers.pop(stream, None)
+
+    # -- internals ---------------------------------------------------------------------
+
+    def _buffer(self, stream: str) -> _PartBuffer:
+        buffer = self._buffers.get(stream)
+        if buffer is None:
+            buffer = self._buffers[stream] = _PartBuffer(0)
+        return buffer
+
+    def _by_spec(self, bars: Sequence[Bar]) -> dict[str, list[Bar]]:
+        grouped: dict[str, list[Bar]] = {}
+        for bar in bars:
+            grouped.setdefault(bar.spec, []).append(bar)
+        return grouped
+
+    def _write_temp(self, name: str, table: pa.Table) -> str:
+        handle = _RollingFile(self.directory / name, table.schema, self._compression)
+        handle.write(table)
+        handle.writer.close()
+        with handle.tmp_path.open("rb") as f:
+            os.fsync(f.fileno())
+        return name
+
+    def _publish_parts(self, names: Sequence[str]) -> None:
+        for name in names:
+            final = self.directory / name
+            temp = final.with_name(f".{name}.tmp")
+            try:
+                if temp.exists():
+                    os.replace(temp, final)
+                    self.files_written.append(final)
+                elif not final.exists():
+                    raise SinkError(f"checkpointed Parquet part {name} is missing from {self.directory}")
+            except OSError as exc:
+                raise SinkError(f"cannot finish {final}: {exc}") from exc
+        if names:
+            _fsync_dir(self.directory)
+
+
+def _reject_row(reject: Reject) -> list[Any]:
+    return [reject.source, reject.position, reject.reason.value, reject.detail, reject.record,
+            reject.symbol, reject.seq, reject.ts]  # fmt: skip
+
+
+def _reject_from_row(row: list[Any]) -> Reject:
+    source, position, reason, detail, record, symbol, seq, ts = row
+    return Reject(source, position, RejectReason(reason), detail, bytes(record), symbol, seq, ts)

@@ -73,7 +73,7 @@ def decode_value(value: bytes | None, unpacker_factory: Callable[[], msgpack.Unp
 class PartitionState:
     """What the runner needs to know about one assigned partition."""
 
-    __slots__ = ("committed", "highwater", "last_record_wall", "next_offset", "partition", "topic")
+    __slots__ = ("committed", "generation", "highwater", "last_record_wall", "next_offset", "partition", "topic")
 
     def __init__(self, topic: str, partition: int) -> None:
         self.topic = topic
@@ -82,6 +82,7 @@ class PartitionState:
         self.committed: int | None = None
         self.last_record_wall = time.monotonic()
         self.highwater: int | None = None
+        self.generation = 0  # bumped by every seek: records fetched before it are stale
 
     @property
     def lag(self) -> int | None:
@@ -110,6 +111,10 @@ class KafkaSource:
         self._consumer: Any = None
         self._stopped = False
         self._scanner = WireScanner()
+        self._failure: BaseException | None = None
+        # Exactly-once: new partitions stay paused until their owner has restored the
+        # checkpoint and sought to it, so no record is read from the wrong place.
+        self.pause_on_assign = False
         self.started = asyncio.Event()
 
     @property
@@ -120,6 +125,12 @@ class KafkaSource:
         return None
 
     def stop(self) -> None:
+        self._stopped = True
+
+    def fail(self, exc: BaseException) -> None:
+        """Stop with ``exc``: ``batches()`` raises it (for errors in rebalance callbacks,
+        which run in the consumer's task)."""
+        self._failure = exc
         self._stopped = True
 
     async def start(self) -> None:
@@ -141,6 +152,8 @@ class KafkaSource:
                     source.partitions.pop(name, None)
 
             async def on_partitions_assigned(self, assigned: Any) -> None:
+                if source.pause_on_assign and assigned:
+                    source._consumer.pause(*assigned)  # before any await: see pause_on_assign
                 for tp in assigned:
                     source.partitions.setdefault(
                         stream_name(tp.topic, tp.partition), PartitionState(tp.topic, tp.partition)
@@ -158,6 +171,8 @@ class KafkaSource:
             auto_offset_reset="earliest",
             max_poll_records=kafka.fetch_max_records,
             isolation_level="read_committed",
+            session_timeout_ms=kafka.session_timeout_ms,
+            heartbeat_interval_ms=max(1_000, kafka.session_timeout_ms // 3),
             **security_kwargs(kafka),
         )
         try:
@@ -175,18 +190,30 @@ class KafkaSource:
         timeout_ms = self.settings.poll_timeout_ms
         while not self._stopped:
             polled = await consumer.getmany(timeout_ms=timeout_ms, max_records=self.settings.fetch_max_records)
+            if self._failure is not None:
+                break
             self._refresh_highwaters()
             if not polled:
                 yield RecordBatch("", "", [], [])  # heartbeat: lets housekeeping run
                 continue
             now = time.monotonic()
+            # What each partition looked like when these records were fetched: a
+            # rebalance or a rewind while earlier partitions are processed makes the
+            # rest of this poll stale for the partitions it touched.
+            fetched_as = {tp: self.partitions.get(stream_name(tp.topic, tp.partition)) for tp in polled}
+            generations = {tp: s.generation for tp, s in fetched_as.items() if s is not None}
             for tp, records in polled.items():
                 if not records:
                     continue
                 name = stream_name(tp.topic, tp.partition)
                 state = self.partitions.get(name)
-                if state is None:  # assigned between listener callbacks
-                    state = self.partitions[name] = PartitionState(tp.topic, tp.partition)
+                if state is None or state is not fetched_as[tp] or state.generation != generations[tp]:
+                    log.debug("dropping %d stale records of %s (revoked or rewound)", len(records), name)
+                    continue
+                if state.next_offset is not None and records[0].offset < state.next_offset:
+                    records = [r for r in records if r.offset >= state.next_offset]  # read twice
+                    if not records:
+                        continue
                 state.last_record_wall = now
                 state.next_offset = records[-1].offset + 1
                 yield self._decode(name, records)
@@ -194,7 +221,45 @@ class KafkaSource:
                 # overlaps with processing instead of following it.
                 await asyncio.sleep(0)
                 if self._stopped:
-                    return
+                    break
+        if self._failure is not None:
+            raise self._failure
+
+    async def seek(self, stream: str, offset: int | None) -> None:
+        """Continue ``stream`` at ``offset`` (None: the partition's beginning)."""
+        from aiokafka.structs import TopicPartition
+
+        state = self.partitions[stream]
+        tp = TopicPartition(state.topic, state.partition)
+        if offset is None:
+            await self._consumer.seek_to_beginning(tp)
+        else:
+            self._consumer.seek(tp, offset)
+        state.next_offset = offset
+        state.generation += 1
+
+    def resume(self, stream: str) -> None:
+        """Start fetching ``stream`` (paused since its assignment)."""
+        from aiokafka.structs import TopicPartition
+
+        state = self.partitions[stream]
+        self._consumer.resume(TopicPartition(state.topic, state.partition))
+
+    async def committed_offset(self, stream: str) -> int | None:
+        """The consumer group's committed offset of ``stream``, if any."""
+        from aiokafka.structs import TopicPartition
+
+        state = self.partitions[stream]
+        offset: int | None = await self._consumer.committed(TopicPartition(state.topic, state.partition))
+        return offset
+
+    async def end_offset(self, stream: str) -> int:
+        from aiokafka.structs import TopicPartition
+
+        state = self.partitions[stream]
+        tp = TopicPartition(state.topic, state.partition)
+        ends = await self._consumer.end_offsets([tp])
+        return int(ends[tp])
 
     def _refresh_highwaters(self) -> None:
         from aiokafka.structs import TopicPartition

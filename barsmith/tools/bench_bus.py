@@ -1,9 +1,12 @@
 """``barsmith bench --bootstrap HOST:PORT``: the service through a real broker.
 
-* consume-to-bars throughput of the service (bus sink on) against a bare aiokafka
+* consume-to-bars throughput of the service (bus sink on), in at-least-once and in
+  exactly-once delivery (default checkpoint cadence), against a bare aiokafka
   consumer that only decodes the same records — with one tick per record and with
   batches of 64 ticks per record;
-* bar-close-to-published latency (p50/p99) while the feed is published paced.
+* bar-close-to-published latency (p50/p99) while the feed is published paced
+  (at-least-once: under exactly-once, bars become visible when their partition's
+  checkpoint commits, i.e. within ``checkpoint.interval_s``).
 
 One run's figures on this machine; not assertions.
 """
@@ -59,7 +62,9 @@ async def _bare_consume(kafka: KafkaSettings, topic: str, ticks: int) -> float:
     return seen / (time.perf_counter() - started)
 
 
-async def _service_consume(bootstrap: str, topic: str, ticks: int, out_topic: str) -> tuple[float, list[float]]:
+async def _service_consume(
+    bootstrap: str, topic: str, ticks: int, out_topic: str, delivery: str = "at-least-once"
+) -> tuple[float, list[float]]:
     """Ticks/s of the service (bars to the bus) and its close-to-ack delays."""
     settings = load_settings(
         bars=SPECS,
@@ -70,6 +75,7 @@ async def _service_consume(bootstrap: str, topic: str, ticks: int, out_topic: st
             "output_topic": out_topic,
         },
         metrics={"port": None},
+        service={"delivery": delivery},
     )
     runner = build_service(settings)
     delays: list[float] = []
@@ -116,16 +122,25 @@ async def _run(bootstrap: str, ticks: int, seed: int, rounds: int = 3) -> list[s
             await publish_feed([feed], kafka, topic, partitions=8, batch_ticks=batch)
             # Interleaved rounds, compared by medians: this class of machine varies a lot.
             bares: list[float] = []
-            ours: list[float] = []
+            alo: list[float] = []
+            eos: list[float] = []
             for round_no in range(rounds):
                 bares.append(await _bare_consume(kafka, topic, ticks))
-                rate, _ = await _service_consume(bootstrap, topic, ticks, f"{topic}-bars-{round_no}")
-                ours.append(rate)
-            bare, mine = statistics.median(bares), statistics.median(ours)
-            per_round = ", ".join(f"{o / b:.2f}" for o, b in zip(ours, bares, strict=True))
+                rate, _ = await _service_consume(bootstrap, topic, ticks, f"{topic}-alo-{round_no}", "at-least-once")
+                alo.append(rate)
+                rate, _ = await _service_consume(bootstrap, topic, ticks, f"{topic}-eos-{round_no}", "exactly-once")
+                eos.append(rate)
+            bare, at_least, exactly = statistics.median(bares), statistics.median(alo), statistics.median(eos)
+
+            def rounds_of(a: list[float], b: list[float]) -> str:
+                return ", ".join(f"{x / y:.2f}" for x, y in zip(a, b, strict=True))
+
             lines.append(
-                f"{batch:>2} tick(s)/record: bare consumer {bare:10,.0f} ticks/s, barsmith {mine:10,.0f} ticks/s"
-                f" (medians of {rounds}), ratio {mine / bare:.2f} (per round: {per_round})"
+                f"{batch:>2} tick(s)/record (medians of {rounds}): bare consumer {bare:10,.0f} ticks/s; barsmith"
+                f" at-least-once {at_least:10,.0f} ticks/s, ratio {at_least / bare:.2f}"
+                f" (rounds {rounds_of(alo, bares)})"
+                f"; exactly-once {exactly:10,.0f} ticks/s, ratio {exactly / bare:.2f} (rounds {rounds_of(eos, bares)})"
+                f"; exactly-once / at-least-once {exactly / at_least:.2f} (rounds {rounds_of(eos, alo)})"
             )
         # Paced: publish at 20x event time while the service runs; time:1s bars close often.
         paced_n = min(ticks, 60_000)

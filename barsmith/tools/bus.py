@@ -58,8 +58,9 @@ async def topic_partitions(kafka: KafkaSettings, topic: str) -> int | None:
         await admin.close()
 
 
-async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int) -> int:
-    """Create ``topic`` with ``partitions`` partitions if missing; returns its partition count."""
+async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int, configs: dict[str, str] | None = None) -> int:
+    """Create ``topic`` with ``partitions`` partitions (and topic ``configs``) if missing;
+    returns its partition count."""
     from aiokafka.admin import NewTopic
     from aiokafka.errors import TopicAlreadyExistsError
 
@@ -71,7 +72,9 @@ async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int) -> int
                 log.warning("topic %s exists with %d partitions (not %d); using it as it is", topic, found, partitions)
             return found
         with contextlib.suppress(TopicAlreadyExistsError):  # created meanwhile by someone else
-            await admin.create_topics([NewTopic(topic, num_partitions=partitions, replication_factor=1)])
+            await admin.create_topics(
+                [NewTopic(topic, num_partitions=partitions, replication_factor=1, topic_configs=configs or {})]
+            )
         return partitions
     finally:
         await admin.close()

@@ -19,21 +19,40 @@ ROOT = Path(__file__).resolve().parents[2]
 BROKER = ROOT / "deploy" / "kafka" / "broker"
 
 
+class Broker:
+    """The session's broker, which a test may stop and start again (same port and data)."""
+
+    def __init__(self, work: Path) -> None:
+        self.env = dict(os.environ, BARSMITH_KAFKA_PORT=str(free_port_pair()), BARSMITH_KAFKA_WORK=str(work))
+        self.bootstrap = ""
+
+    def start(self) -> subprocess.CompletedProcess[str]:
+        done = subprocess.run([str(BROKER), "start"], env=self.env, capture_output=True, text=True, timeout=900)
+        if done.returncode == 0:
+            self.bootstrap = done.stdout.strip().splitlines()[-1]
+        return done
+
+    def stop(self) -> None:
+        subprocess.run([str(BROKER), "stop"], env=self.env, capture_output=True, text=True, timeout=120)
+
+
 @pytest.fixture(scope="session")
-def kafka_bootstrap(tmp_path_factory: pytest.TempPathFactory) -> Iterator[str]:
-    """host:port of a fresh single-node broker for this test session."""
-    env = dict(
-        os.environ,
-        BARSMITH_KAFKA_PORT=str(free_port_pair()),
-        BARSMITH_KAFKA_WORK=str(tmp_path_factory.mktemp("kafka")),
-    )
-    done = subprocess.run([str(BROKER), "start"], env=env, capture_output=True, text=True, timeout=900)
+def kafka_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Broker]:
+    """A fresh single-node broker for this test session."""
+    broker = Broker(tmp_path_factory.mktemp("kafka"))
+    done = broker.start()
     if done.returncode != 0:
         message = f"the Kafka broker did not start:\n{done.stderr[-3000:]}"
         if os.environ.get("CI") == "true":
             pytest.fail(message)
         pytest.skip(message)
     try:
-        yield done.stdout.strip().splitlines()[-1]
+        yield broker
     finally:
-        subprocess.run([str(BROKER), "stop"], env=env, capture_output=True, text=True, timeout=120)
+        broker.stop()
+
+
+@pytest.fixture(scope="session")
+def kafka_bootstrap(kafka_broker: Broker) -> str:
+    """host:port of the session's broker."""
+    return kafka_broker.bootstrap

@@ -123,7 +123,8 @@ def samples(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], float]:
 
 async def test_service_builds_the_bars_replay_builds(kafka_bootstrap: str, tmp_path: Path) -> None:
     """Demo feed → 8-partition topic → service (bus + Parquet) = replay --partitions 8, field for field;
-    the metrics endpoint, scraped over HTTP, agrees with the run's summary."""
+    the metrics endpoint, scraped over HTTP, agrees with the run's summary. Exactly-once: SIGTERM
+    keeps open bars open in the checkpoints, and a second run in drain mode finishes them."""
     topic = "demo-ticks"
     sent = await publish_feed([DEMO], kafka(kafka_bootstrap), topic, partitions=8)
     assert sent.records > 200_000
@@ -167,6 +168,21 @@ async def test_service_builds_the_bars_replay_builds(kafka_bootstrap: str, tmp_p
         assert metrics[("barsmith_bars_built_total", (("spec", spec),))] <= stats.bars[spec]
 
     expected = await asyncio.to_thread(replay_frame, DEMO, tmp_path / "replay")
+    closed = expected[expected["complete"]].reset_index(drop=True)
+    assert len(closed) < len(expected)
+    assert_same_bars(closed, parquet_frame(tmp_path / "service"))
+    assert_same_bars(closed, await read_topic(kafka_bootstrap, "demo-bars"))
+
+    # The same group again, in drain mode: it continues from the checkpoints, sees no
+    # more input and closes the open bars as replay does at the end of its input.
+    settings = service_settings(
+        kafka_bootstrap,
+        topic,
+        kafka={"output_topic": "demo-bars"},
+        parquet={"dir": tmp_path / "service"},
+        service={"exit_when_idle_s": 2.0},
+    )
+    await build_service(settings).serve()
     assert_same_bars(expected, parquet_frame(tmp_path / "service"))
     assert_same_bars(expected, await read_topic(kafka_bootstrap, "demo-bars"))
 
@@ -181,13 +197,15 @@ async def test_batched_records_give_the_same_bars(kafka_bootstrap: str, small_fe
 
 
 def test_two_workers_split_the_partitions(kafka_bootstrap: str, small_feed: Path, tmp_path: Path) -> None:
-    """--workers 2: two processes in one group share the partitions and together give the bars of one."""
+    """--workers 2: two processes in one group share the partitions and together give the bars of one
+    (at-least-once delivery: its rolling files name their writer)."""
     out = tmp_path / "service"
     base_port = free_port_pair()
     args = [
         sys.executable, "-m", "barsmith", "run", "--bootstrap", kafka_bootstrap, "--input-topic", "split-ticks",
         "--group", "g-split", "--parquet-dir", str(out), "--metrics-port", str(base_port),
-        "--exit-when-idle", "8s", "--workers", "2", *[a for s in SPECS for a in ("--bars", s)],
+        "--exit-when-idle", "8s", "--workers", "2", "--delivery", "at-least-once",
+        *[a for s in SPECS for a in ("--bars", s)],
     ]  # fmt: skip
     asyncio.run(_create_topic(kafka_bootstrap, "split-ticks"))
     proc = subprocess.Popen(args, stderr=subprocess.PIPE, text=True)
