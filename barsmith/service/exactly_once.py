@@ -156,6 +156,7 @@ class PartitionOwner:
         "partition",
         "producer",
         "records_at",
+        "restores",
         "sink_states",
         "stream",
         "topic",
@@ -176,6 +177,7 @@ class PartitionOwner:
         self.healthy = False  # False: the open transaction failed; recover before more input
         self.fenced = False  # another process owns the partition now
         self.loaded = False  # the stored checkpoint has been read
+        self.restores = 0  # how often state was (re)installed: a checkpoint in flight is then void
 
 
 class ExactlyOnce:
@@ -193,9 +195,8 @@ class ExactlyOnce:
         await self.state.start()
 
     async def close(self) -> None:
-        for owner in list(self.owners.values()):
-            await self._stop_producer(owner.producer)
-        self.owners.clear()
+        owners, self.owners = list(self.owners.values()), {}
+        await asyncio.gather(*(self._stop_producer(owner.producer) for owner in owners))
         await self.state.close()
 
     def producer_for(self, stream: str) -> Any:
@@ -258,16 +259,12 @@ class ExactlyOnce:
 
     async def revoke(self, streams: Sequence[str]) -> None:
         """Let go of ``streams``: checkpoint and commit what they did, then forget them."""
-        for stream in streams:
-            owner = self.owners.get(stream)
-            if owner is None:
-                continue
-            if owner.healthy:
-                await self.checkpoint(stream, final=True)
+        mine = [s for s in streams if s in self.owners]
+        await asyncio.gather(*(self.checkpoint(s, final=True) for s in mine if self.owners[s].healthy))
+        for stream in mine:
             for sink in self.sinks:
                 sink.release(stream)
-            await self._stop_producer(owner.producer)
-            del self.owners[stream]
+        await asyncio.gather(*(self._stop_producer(self.owners.pop(s).producer) for s in mine))
 
     # -- checkpoints --------------------------------------------------------------------
 
@@ -283,19 +280,21 @@ class ExactlyOnce:
     async def housekeeping(self, now: float) -> None:
         """Checkpoint partitions that are due; retry the recovery of failed ones."""
         interval = self.settings.checkpoint.interval_s
+        due = []
         for stream, owner in list(self.owners.items()):
             if owner.fenced or stream not in self.owners:
                 continue
             if not owner.healthy:
                 await self._recover(owner)  # a bus failure is logged and retried next time
-                continue
-            if now - owner.last_at >= interval:
-                await self.checkpoint(stream)
+            elif now - owner.last_at >= interval:
+                due.append(stream)
+        # Partitions are independent (own producer, engine, sink buffers): their
+        # transactions' round trips overlap instead of adding up.
+        await asyncio.gather(*(self.checkpoint(stream) for stream in due))
 
     async def checkpoint_all(self, final: bool) -> None:
-        for stream, owner in list(self.owners.items()):
-            if owner.healthy:
-                await self.checkpoint(stream, final=final)
+        streams = [stream for stream, owner in self.owners.items() if owner.healthy]
+        await asyncio.gather(*(self.checkpoint(stream, final=final) for stream in streams))
 
     async def checkpoint(self, stream: str, final: bool = False) -> bool:
         """Commit ``stream``'s bars, checkpoint and offset in one transaction.
@@ -312,9 +311,10 @@ class ExactlyOnce:
         from aiokafka.structs import TopicPartition
 
         started = time.perf_counter()
+        restores = owner.restores
         try:
             await self.runner.deliver(stream, engine)
-            if not owner.healthy:  # delivery failed and the stream rewound
+            if not owner.healthy or owner.restores != restores:  # delivery failed: the stream rewound
                 return False
             sink_states = {sink.name: await sink.prepare(stream, offset, final) for sink in self.sinks}
             meta = {"offset": offset, "sinks": sink_states, "epoch": owner.epoch + 1, "written_ns": time.time_ns()}
@@ -410,6 +410,7 @@ class ExactlyOnce:
         owner.records_at = engine.stats.records
         owner.dirty = False
         owner.last_at = time.monotonic()
+        owner.restores += 1
         await owner.producer.begin_transaction()
         owner.healthy = True
         self.metrics.restores.labels(reason=reason).inc()

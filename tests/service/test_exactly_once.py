@@ -95,9 +95,58 @@ def assert_exact(bootstrap: str, topic: str, out: Path, expected: Any) -> None:
     assert_same_bars(expected, parquet_frame(out))  # also: no temporary file left visible
 
 
+async def latest_checkpoints(bootstrap: str, state_topic: str) -> dict[str, bytes]:
+    """The last committed checkpoint per key on the state topic."""
+    from aiokafka import AIOKafkaConsumer
+
+    consumer = AIOKafkaConsumer(
+        state_topic, bootstrap_servers=bootstrap, auto_offset_reset="earliest", isolation_level="read_committed"
+    )
+    await consumer.start()
+    latest: dict[str, bytes] = {}
+    try:
+        idle = 0
+        while idle < 3:
+            polled = await consumer.getmany(timeout_ms=1000)
+            idle = 0 if polled else idle + 1
+            for records in polled.values():
+                for record in records:
+                    latest[record.key.decode()] = record.value
+    finally:
+        await consumer.stop()
+    return latest
+
+
+def book_rows(engine: Any) -> dict[str, tuple[Any, ...]]:
+    return {
+        book.symbol: (book.status, book.last_seq, book.last_ts, book.bid_px, book.bid_qty, book.ask_px, book.ask_qty)
+        for book in engine.books()
+    }
+
+
+def assert_books_equal_replay(bootstrap: str, topic: str, group: str) -> None:
+    """The books in the final checkpoints equal the books of an uninterrupted replay, per partition."""
+    from barsmith.checkpoint import decode_checkpoint
+    from barsmith.runner import Runner
+    from barsmith.settings import load_settings
+    from barsmith.sinks.base import MemorySink
+    from barsmith.sources.files import FileSource
+
+    settings = load_settings(bars=SPECS)
+    specs, lateness = settings.bar_specs(), settings.lateness_ns
+    replay = Runner(specs, lateness, FileSource([DEMO], partitions=8), [MemorySink()], MemorySink())
+    replay.run()
+    stored = asyncio.run(latest_checkpoints(bootstrap, f"{group}.barsmith-state"))
+    assert len(stored) == 8
+    for partition in range(8):
+        engine, _ = decode_checkpoint(stored[f"{topic}[{partition}]"], specs, lateness)
+        assert book_rows(engine) == book_rows(replay.engines[f"p{partition}"]), f"partition {partition}"
+
+
 def test_crash_loop_output_is_exactly_replay(kafka_bootstrap: str, tmp_path: Path) -> None:
     """SIGKILL the service at random moments (≥ 10 kills, seed printed) while the feed arrives;
-    after a final run to the end, bus and Parquet hold exactly replay's bars."""
+    after a final run to the end, bus and Parquet hold exactly replay's bars, and the books in
+    the final checkpoints are replay's books."""
     seed = int(os.environ.get("BARSMITH_CRASH_SEED") or random.SystemRandom().randrange(2**32))
     print(f"crash-loop seed {seed} (rerun with BARSMITH_CRASH_SEED={seed})")
     rng = random.Random(seed)
@@ -129,6 +178,7 @@ def test_crash_loop_output_is_exactly_replay(kafka_bootstrap: str, tmp_path: Pat
     text = log.read_text()
     assert text.count("restored from its checkpoint") >= 3, "the kills should have landed after checkpoints"
     assert_exact(kafka_bootstrap, topic, out, replay_frame(DEMO, tmp_path / "replay"))
+    assert_books_equal_replay(kafka_bootstrap, topic, "g-crash")
 
 
 def test_broker_restart_mid_run(kafka_broker: Broker, tmp_path: Path) -> None:
@@ -156,6 +206,7 @@ def test_broker_restart_mid_run(kafka_broker: Broker, tmp_path: Path) -> None:
             proc.kill()
             proc.wait()
     assert_exact(bootstrap, topic, out, replay_frame(DEMO, tmp_path / "replay"))
+    assert_books_equal_replay(bootstrap, topic, "g-restart")
 
 
 def test_rebalance_second_instance_joins_and_leaves(kafka_bootstrap: str, tmp_path: Path) -> None:
@@ -195,6 +246,7 @@ def test_rebalance_second_instance_joins_and_leaves(kafka_bootstrap: str, tmp_pa
                 proc.wait()
     assert "restored from its checkpoint" in log_a.read_text(), "the first instance should take back checkpoints"
     assert_exact(kafka_bootstrap, topic, out, replay_frame(DEMO, tmp_path / "replay"))
+    assert_books_equal_replay(kafka_bootstrap, topic, "g-rebalance")
 
 
 def test_at_least_once_mode_is_still_available(kafka_bootstrap: str, tmp_path: Path) -> None:
