@@ -39,6 +39,30 @@ class _JsonFormatter(logging.Formatter):
         )
 
 
+class _RepeatFilter(logging.Filter):
+    """The Kafka client logs the same error many times a second while a broker is away;
+    let one line per message pattern through every ``window_s`` and count the rest."""
+
+    def __init__(self, window_s: float = 10.0) -> None:
+        super().__init__()
+        self._window_s = window_s
+        self._last: dict[tuple[str, str], tuple[float, int]] = {}
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if not record.name.startswith("aiokafka"):
+            return True
+        key = (record.name, str(record.msg))
+        now = time.monotonic()
+        last, suppressed = self._last.get(key, (-self._window_s, 0))
+        if now - last < self._window_s:
+            self._last[key] = (last, suppressed + 1)
+            return False
+        self._last[key] = (now, 0)
+        if suppressed:
+            record.msg = f"{record.msg} ({suppressed} similar lines in the last {self._window_s:.0f} s suppressed)"
+        return True
+
+
 def configure_logging(as_json: bool) -> None:
     """One line per notable event on stderr (never one per tick)."""
     handler = logging.StreamHandler(sys.stderr)
@@ -46,6 +70,7 @@ def configure_logging(as_json: bool) -> None:
         handler.setFormatter(_JsonFormatter())
     else:
         handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    handler.addFilter(_RepeatFilter())
     root = logging.getLogger()
     root.handlers[:] = [handler]
     root.setLevel(logging.INFO)

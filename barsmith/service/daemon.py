@@ -139,8 +139,12 @@ class ServiceRunner(Runner):
         return self._http.port if self._http is not None else None
 
     def ready(self) -> bool:
-        """``/readyz``: the consumer runs and holds at least one partition."""
-        return self.kafka_source.started.is_set() and self.kafka_source.assigned and not self.should_exit
+        """``/readyz``: the consumer runs and holds at least one partition (exactly-once:
+        one restored from its checkpoint and being consumed)."""
+        if not (self.kafka_source.started.is_set() and self.kafka_source.assigned) or self.should_exit:
+            return False
+        eos = self.exactly_once
+        return eos is None or any(owner.healthy for owner in eos.owners.values())
 
     async def startup(self) -> None:
         await super().startup()

@@ -16,8 +16,12 @@ On assignment the owner reads the partition's latest checkpoint, restores the en
 and the sinks' staged state, and seeks the consumer to the checkpoint's offset. When
 a transaction fails (broker gone, timeout), the owner aborts it and *rewinds*:
 restores the last committed checkpoint and seeks back, so the bars of the aborted
-transaction are built again from the same input. A fenced owner (another process
-took the partition) stops touching the partition and waits for the revocation.
+transaction are built again from the same input. A fenced owner (another producer
+took the partition's transactional id) stops touching the partition and waits for
+the revocation; if the group still assigns the partition to this process two
+session timeouts later (the fencer was a zombie, or the broker aborted a transaction
+that outlived ``transaction_timeout_ms``), it takes the partition back from its
+checkpoint.
 """
 
 from __future__ import annotations
@@ -149,6 +153,7 @@ class PartitionOwner:
         "dirty",
         "epoch",
         "fenced",
+        "fenced_at",
         "healthy",
         "last_at",
         "loaded",
@@ -175,7 +180,8 @@ class PartitionOwner:
         self.records_at = 0
         self.dirty = False  # something went into the open transaction since the checkpoint
         self.healthy = False  # False: the open transaction failed; recover before more input
-        self.fenced = False  # another process owns the partition now
+        self.fenced = False  # another producer took the transactional id
+        self.fenced_at = 0.0
         self.loaded = False  # the stored checkpoint has been read
         self.restores = 0  # how often state was (re)installed: a checkpoint in flight is then void
 
@@ -281,8 +287,17 @@ class ExactlyOnce:
         """Checkpoint partitions that are due; retry the recovery of failed ones."""
         interval = self.settings.checkpoint.interval_s
         due = []
+        grace_s = 2 * self.settings.kafka.session_timeout_ms / 1000
         for stream, owner in list(self.owners.items()):
-            if owner.fenced or stream not in self.owners:
+            if stream not in self.owners:
+                continue
+            if owner.fenced:
+                if now - owner.fenced_at >= grace_s:
+                    log.warning("%s: still assigned here %.0f s after being fenced: taking it back", stream, grace_s)
+                    owner.fenced = False
+                    await self._stop_producer(owner.producer)
+                    owner.producer = None
+                    await self._recover(owner)
                 continue
             if not owner.healthy:
                 await self._recover(owner)  # a bus failure is logged and retried next time
@@ -349,11 +364,11 @@ class ExactlyOnce:
         """The open transaction of ``stream`` failed: abort it and rewind to the checkpoint."""
         owner = self.owners[stream]
         owner.healthy = False
+        self.runner.kafka_source.pause(stream)  # no point fetching what the rewind re-reads
         self.metrics.transactions.labels(outcome="aborted").inc()
         if _is_fenced(exc):
-            owner.fenced = True
-            self.runner.retire(stream)
-            log.error("%s: another process owns this partition now (fenced); leaving it to them", stream)
+            owner.fenced, owner.fenced_at = True, time.monotonic()
+            log.error("%s: another producer took this partition's transactional id (fenced); standing back", stream)
             return
         log.warning(
             "%s: transaction failed (%s: %s); rewinding to the checkpoint at offset %s",

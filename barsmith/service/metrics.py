@@ -140,6 +140,11 @@ class ServiceMetrics:
             "Input records consumed again because a restore moved a partition back",
             registry=self.registry,
         )
+        # Known label values exist from the start (at zero), so rates and alerts see them.
+        for outcome in ("committed", "aborted"):
+            self.transactions.labels(outcome=outcome)
+        for reason in ("assignment", "rewind"):
+            self.restores.labels(reason=reason)
 
     def count_bars(self, sink: str, bars: Iterable[Any]) -> None:
         counts: dict[str, int] = {}

@@ -60,7 +60,7 @@ class KafkaBarSink:
         self.published = 0
         self.producer_for = producer_for
         self._stream_inflight: dict[str, set[asyncio.Future[Any]]] = {}
-        self._stream_failures: dict[str, str] = {}
+        self._stream_failures: dict[str, BaseException] = {}
 
     async def start(self) -> None:
         if self.producer_for is not None:
@@ -114,11 +114,11 @@ class KafkaBarSink:
         self._inflight.discard(future)
         if self.producer_for is not None:
             self._stream_inflight.get(stream, set()).discard(future)
-        failure = "delivery cancelled" if future.cancelled() else future.exception()
+        failure = asyncio.CancelledError("delivery cancelled") if future.cancelled() else future.exception()
         if failure is not None:
             if self.producer_for is not None:
                 # In a transaction: the partition's next checkpoint must not commit.
-                self._stream_failures.setdefault(stream, str(failure))
+                self._stream_failures.setdefault(stream, failure)
             else:
                 self._error = self._error or str(failure)
             return
@@ -155,9 +155,7 @@ class KafkaBarSink:
             await asyncio.gather(*list(pending), return_exceptions=True)
         failure = self._stream_failures.pop(stream, None)
         if failure is not None:
-            from aiokafka.errors import KafkaError
-
-            raise SinkError(f"the broker did not take bars of {stream}: {failure}") from KafkaError(failure)
+            raise SinkError(f"the broker did not take bars of {stream}: {failure!r}") from failure
         return None
 
     async def committed(self, stream: str, state: Any) -> None:

@@ -238,6 +238,14 @@ class KafkaSource:
         state.next_offset = offset
         state.generation += 1
 
+    def pause(self, stream: str) -> None:
+        """Stop fetching ``stream`` (its owner is recovering; a seek will follow)."""
+        from aiokafka.structs import TopicPartition
+
+        state = self.partitions.get(stream)
+        if state is not None and self._consumer is not None:
+            self._consumer.pause(TopicPartition(state.topic, state.partition))
+
     def resume(self, stream: str) -> None:
         """Start fetching ``stream`` (paused since its assignment)."""
         from aiokafka.structs import TopicPartition
