@@ -171,10 +171,16 @@ class ServiceRunner(Runner):
 
     async def process_batch(self, batch: RecordBatch) -> None:
         async with self._lock:
+            # Checked under the lock: while this batch waited for it, a rebalance
+            # callback may have checkpointed, revoked or rewound its partition.
+            state = self.kafka_source.current(batch)
+            if state is None:
+                return  # stale: the partition was reassigned or sought since the fetch
             eos = self.exactly_once
             if eos is not None and not eos.accepts(batch.stream):
                 return  # revoked, fenced or recovering: the restore seeks back to this input
             await super().process_batch(batch)
+            state.next_offset = batch.end_position
             if eos is not None:
                 await eos.after_batch(batch.stream)
         self._last_input = time.monotonic()

@@ -17,6 +17,9 @@ class RecordBatch:
     partition); ``source`` names where they came from for the rejects file;
     ``positions[i]`` is the byte offset (file) or Kafka offset of ``records[i]``.
     ``rejects`` are records that failed before decoding (framing errors).
+    ``end_position`` (live sources) is where the stream continues after this batch;
+    ``token`` lets the source tell, when the batch is processed, whether the stream
+    was rewound or reassigned since it was fetched.
     """
 
     stream: str
@@ -24,6 +27,8 @@ class RecordBatch:
     records: list[Any]
     positions: list[int]
     rejects: list[Reject] = field(default_factory=list)
+    end_position: int | None = None
+    token: Any = None
 
 
 class Source(Protocol):

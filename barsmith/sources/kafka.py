@@ -215,8 +215,12 @@ class KafkaSource:
                     if not records:
                         continue
                 state.last_record_wall = now
-                state.next_offset = records[-1].offset + 1
-                yield self._decode(name, records)
+                batch = self._decode(name, records)
+                # The position advances when the runner has processed the batch (see
+                # current()), not here: a rebalance callback may checkpoint in between.
+                batch.end_position = records[-1].offset + 1
+                batch.token = (state, state.generation)
+                yield batch
                 # Let aiokafka's fetcher run between partitions, so the next fetch
                 # overlaps with processing instead of following it.
                 await asyncio.sleep(0)
@@ -224,6 +228,16 @@ class KafkaSource:
                     break
         if self._failure is not None:
             raise self._failure
+
+    def current(self, batch: RecordBatch) -> PartitionState | None:
+        """The partition's state if ``batch`` is still valid — its partition neither
+        reassigned nor sought since the batch was fetched; None for a stale batch.
+        The caller sets ``next_offset = batch.end_position`` once it has processed it."""
+        state = self.partitions.get(batch.stream)
+        if state is None or batch.token is None:
+            return None
+        fetched_state, generation = batch.token
+        return state if fetched_state is state and generation == state.generation else None
 
     async def seek(self, stream: str, offset: int | None) -> None:
         """Continue ``stream`` at ``offset`` (None: the partition's beginning)."""
