@@ -289,6 +289,9 @@ class ServiceRunner(Runner):
         """Before partitions leave. Exactly-once: a final checkpoint each, from which the
         next owner continues, open bars included. At-least-once: publish what is final,
         flush, commit, drop their state (open bars are lost to the next owner)."""
+        # A rebalance is activity for drain mode: draining now would end the input while
+        # the partitions just let go (open bars included) are still on their way back.
+        self._last_input = time.monotonic()
         async with self._lock:
             if self.exactly_once is not None:
                 await self.exactly_once.revoke(streams)
@@ -308,7 +311,7 @@ class ServiceRunner(Runner):
         # Drain mode counts idle time from the (re)assignment, not from start-up: a
         # member waiting for the group to settle has not been idle on its input.
         self._last_input = time.monotonic()
-        if self.exactly_once is not None:
+        if self.exactly_once is not None and not self.should_exit:  # leaving: take nothing on
             async with self._lock:
                 try:
                     await self.exactly_once.assign(streams)
