@@ -40,6 +40,11 @@ class Reject:
         row["reason"] = self.reason.value
         return {name: row[name] for name in REJECT_COLUMNS}
 
+    @classmethod
+    def from_row(cls, row: dict[str, Any]) -> Reject:
+        """Inverse of :meth:`as_row`."""
+        return cls(**{**row, "reason": RejectReason(row["reason"]), "record": bytes(row["record"])})
+
 
 def pack_record(obj: Any) -> bytes:
     """Re-encode a decoded record for the rejects file (best effort, never raises)."""

@@ -57,27 +57,27 @@ STATE_TOPIC_CONFIGS = {
 _ABORT_TIMEOUT_S = 10.0
 
 
+def _caused_by(exc: BaseException, kinds: type[BaseException] | tuple[type[BaseException], ...]) -> bool:
+    """Whether ``exc`` or an exception it was raised from is one of ``kinds``."""
+    seen: BaseException | None = exc
+    while seen is not None:
+        if isinstance(seen, kinds):
+            return True
+        seen = seen.__cause__
+    return False
+
+
 def is_bus_failure(exc: BaseException) -> bool:
     """A failure of the broker or the transaction (worth a rewind), not of our own code."""
     from aiokafka.errors import KafkaError
 
-    seen: BaseException | None = exc
-    while seen is not None:
-        if isinstance(seen, KafkaError | asyncio.TimeoutError | ConnectionError):
-            return True
-        seen = seen.__cause__
-    return False
+    return _caused_by(exc, (KafkaError, asyncio.TimeoutError, ConnectionError))
 
 
 def _is_fenced(exc: BaseException) -> bool:
     from aiokafka.errors import ProducerFenced
 
-    seen: BaseException | None = exc
-    while seen is not None:
-        if isinstance(seen, ProducerFenced):
-            return True
-        seen = seen.__cause__
-    return False
+    return _caused_by(exc, ProducerFenced)
 
 
 class StateTopic:
@@ -224,7 +224,7 @@ class ExactlyOnce:
             self.owners[stream] = PartitionOwner(stream, part.topic, part.partition, None)
         # Start all producers first (in parallel): that fences the earlier owners and
         # aborts their open transactions, so the state topic is stable when read.
-        results = await asyncio.gather(*(self._start_producer(s) for s in new), return_exceptions=True)
+        results = await asyncio.gather(*(self._start_producer(self.owners[s]) for s in new), return_exceptions=True)
         for stream, result in zip(new, results, strict=True):
             if isinstance(result, BaseException):
                 log.warning("%s: cannot start its producer yet (%s); retrying", stream, result)
@@ -288,9 +288,7 @@ class ExactlyOnce:
         interval = self.settings.checkpoint.interval_s
         due = []
         grace_s = 2 * self.settings.kafka.session_timeout_ms / 1000
-        for stream, owner in list(self.owners.items()):
-            if stream not in self.owners:
-                continue
+        for stream, owner in list(self.owners.items()):  # the caller holds the engine lock
             if owner.fenced:
                 if now - owner.fenced_at >= grace_s:
                     log.warning("%s: still assigned here %.0f s after being fenced: taking it back", stream, grace_s)
@@ -389,7 +387,7 @@ class ExactlyOnce:
     async def _recover(self, owner: PartitionOwner) -> None:
         try:
             if owner.producer is None:
-                owner.producer = await self._start_producer(owner.stream)
+                owner.producer = await self._start_producer(owner)
             reason = "rewind"
             if not owner.loaded:
                 await self._adopt(owner, (await self.state.load([owner.stream])).get(owner.stream))
@@ -452,17 +450,16 @@ class ExactlyOnce:
 
     # -- producers ------------------------------------------------------------------------
 
-    async def _start_producer(self, stream: str) -> Any:
+    async def _start_producer(self, owner: PartitionOwner) -> Any:
         from aiokafka import AIOKafkaProducer
         from aiokafka.errors import KafkaError
 
         kafka = self.settings.kafka
-        topic, _, rest = stream.partition("[")
         compression = None if kafka.output_compression == "none" else kafka.output_compression
         producer = AIOKafkaProducer(
             bootstrap_servers=kafka.bootstrap_servers,
-            client_id=f"{kafka.client_id}-{topic}-{rest.rstrip(']')}",
-            transactional_id=f"{kafka.group_id}.{topic}.{rest.rstrip(']')}",
+            client_id=f"{kafka.client_id}-{owner.topic}-{owner.partition}",
+            transactional_id=f"{kafka.group_id}.{owner.topic}.{owner.partition}",
             transaction_timeout_ms=kafka.transaction_timeout_ms,
             enable_idempotence=True,
             acks="all",
@@ -474,7 +471,7 @@ class ExactlyOnce:
             await producer.start()  # init_transactions: fences the partition's previous owner
         except KafkaError as exc:
             await self._stop_producer(producer)
-            raise SinkError(f"cannot start the transactional producer for {stream}: {exc}") from exc
+            raise SinkError(f"cannot start the transactional producer for {owner.stream}: {exc}") from exc
         return producer
 
     async def _stop_producer(self, producer: Any) -> None:

@@ -21,7 +21,6 @@ from barsmith.bars.bar import BAR_COLUMNS, Bar
 from barsmith.bars.spec import BarSpec
 from barsmith.errors import ConfigError, SinkError
 from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
-from barsmith.ingest.ticks import RejectReason
 
 _TS: Final = pa.timestamp("ns", tz="UTC")
 
@@ -92,10 +91,14 @@ class _RollingFile:
         self.writer.write_table(table)
         self.rows += table.num_rows
 
-    def commit(self) -> Path:
+    def finish(self) -> None:
+        """Close the file and make it durable, still under its temporary name."""
         self.writer.close()
         with self.tmp_path.open("rb") as handle:
             os.fsync(handle.fileno())
+
+    def commit(self) -> Path:
+        self.finish()
         os.replace(self.tmp_path, self.final_path)
         _fsync_dir(self.final_path.parent)
         return self.final_path
@@ -309,7 +312,7 @@ class ParquetPartSink:
                 "from": buffer.from_offset,
                 "parts": [],
                 "bars": [list(bar.as_dict().values()) for bar in buffer.bars],
-                "rejects": [_reject_row(r) for r in buffer.rejects],
+                "rejects": [list(r.as_row().values()) for r in buffer.rejects],
             }
         parts = []
         try:
@@ -348,7 +351,7 @@ class ParquetPartSink:
         self._publish_parts(state["parts"])
         buffer = self._buffers[stream] = _PartBuffer(int(state["from"]))
         buffer.bars = [Bar(*row) for row in state["bars"]]
-        buffer.rejects = [_reject_from_row(row) for row in state["rejects"]]
+        buffer.rejects = [Reject.from_row(dict(zip(REJECT_COLUMNS, row, strict=True))) for row in state["rejects"]]
 
     def release(self, stream: str) -> None:
         """The partition went to another owner, which continues from its checkpoint."""
@@ -371,9 +374,7 @@ class ParquetPartSink:
     def _write_temp(self, name: str, table: pa.Table) -> str:
         handle = _RollingFile(self.directory / name, table.schema, self._compression)
         handle.write(table)
-        handle.writer.close()
-        with handle.tmp_path.open("rb") as f:
-            os.fsync(f.fileno())
+        handle.finish()  # renamed by _publish_parts once the checkpoint naming it commits
         return name
 
     def _publish_parts(self, names: Sequence[str]) -> None:
@@ -390,13 +391,3 @@ class ParquetPartSink:
                 raise SinkError(f"cannot finish {final}: {exc}") from exc
         if names:
             _fsync_dir(self.directory)
-
-
-def _reject_row(reject: Reject) -> list[Any]:
-    return [reject.source, reject.position, reject.reason.value, reject.detail, reject.record,
-            reject.symbol, reject.seq, reject.ts]  # fmt: skip
-
-
-def _reject_from_row(row: list[Any]) -> Reject:
-    source, position, reason, detail, record, symbol, seq, ts = row
-    return Reject(source, position, RejectReason(reason), detail, bytes(record), symbol, seq, ts)

@@ -200,14 +200,13 @@ class KafkaSource:
             # What each partition looked like when these records were fetched: a
             # rebalance or a rewind while earlier partitions are processed makes the
             # rest of this poll stale for the partitions it touched.
-            fetched_as = {tp: self.partitions.get(stream_name(tp.topic, tp.partition)) for tp in polled}
-            generations = {tp: s.generation for tp, s in fetched_as.items() if s is not None}
+            tokens = {tp: self._token(stream_name(tp.topic, tp.partition)) for tp in polled}
             for tp, records in polled.items():
                 if not records:
                     continue
                 name = stream_name(tp.topic, tp.partition)
-                state = self.partitions.get(name)
-                if state is None or state is not fetched_as[tp] or state.generation != generations[tp]:
+                state = self._current(name, tokens[tp])
+                if state is None:
                     log.debug("dropping %d stale records of %s (revoked or rewound)", len(records), name)
                     continue
                 if state.next_offset is not None and records[0].offset < state.next_offset:
@@ -219,7 +218,7 @@ class KafkaSource:
                 # The position advances when the runner has processed the batch (see
                 # current()), not here: a rebalance callback may checkpoint in between.
                 batch.end_position = records[-1].offset + 1
-                batch.token = (state, state.generation)
+                batch.token = tokens[tp]
                 yield batch
                 # Let aiokafka's fetcher run between partitions, so the next fetch
                 # overlaps with processing instead of following it.
@@ -233,11 +232,18 @@ class KafkaSource:
         """The partition's state if ``batch`` is still valid — its partition neither
         reassigned nor sought since the batch was fetched; None for a stale batch.
         The caller sets ``next_offset = batch.end_position`` once it has processed it."""
-        state = self.partitions.get(batch.stream)
-        if state is None or batch.token is None:
+        return self._current(batch.stream, batch.token)
+
+    def _token(self, stream: str) -> tuple[PartitionState, int] | None:
+        state = self.partitions.get(stream)
+        return (state, state.generation) if state is not None else None
+
+    def _current(self, stream: str, token: tuple[PartitionState, int] | None) -> PartitionState | None:
+        if token is None:
             return None
-        fetched_state, generation = batch.token
-        return state if fetched_state is state and generation == state.generation else None
+        fetched, generation = token
+        state = self.partitions.get(stream)
+        return state if state is fetched and state.generation == generation else None
 
     async def seek(self, stream: str, offset: int | None) -> None:
         """Continue ``stream`` at ``offset`` (None: the partition's beginning)."""

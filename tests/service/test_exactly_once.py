@@ -30,6 +30,7 @@ from test_service import (
     assert_same_bars,
     kafka,
     parquet_frame,
+    read_records,
     read_topic,
     replay_frame,
     samples,
@@ -79,6 +80,21 @@ def consumed(port: int) -> float:
                and dict(labels)["outcome"] in ("accepted", "duplicate", "rejected"))  # fmt: skip
 
 
+def paced_publisher(bootstrap: str, topic: str) -> threading.Thread:
+    """A thread publishing the demo feed (75 minutes of event time) at 150x: about 30 s."""
+    return threading.Thread(
+        target=lambda: asyncio.run(publish_feed([DEMO], kafka(bootstrap), topic, partitions=8, speed=150.0))
+    )
+
+
+def wait_consumed(port: int, proc: subprocess.Popen[bytes], log: Path, at_least: int, timeout_s: float = 60) -> None:
+    """Wait until the service at ``port`` has handled ``at_least`` messages (mid-stream)."""
+    deadline = time.monotonic() + timeout_s
+    while consumed(port) < at_least:
+        assert time.monotonic() < deadline and proc.poll() is None, log.read_text()[-3000:]
+        time.sleep(0.1)
+
+
 def drain(args: list[str], log: Path, timeout_s: float = 240) -> None:
     """Run the service in drain mode to the end of its input; it must exit 0."""
     proc = spawn([*args, "--exit-when-idle", "6s"], log)
@@ -97,24 +113,7 @@ def assert_exact(bootstrap: str, topic: str, out: Path, expected: Any) -> None:
 
 async def latest_checkpoints(bootstrap: str, state_topic: str) -> dict[str, bytes]:
     """The last committed checkpoint per key on the state topic."""
-    from aiokafka import AIOKafkaConsumer
-
-    consumer = AIOKafkaConsumer(
-        state_topic, bootstrap_servers=bootstrap, auto_offset_reset="earliest", isolation_level="read_committed"
-    )
-    await consumer.start()
-    latest: dict[str, bytes] = {}
-    try:
-        idle = 0
-        while idle < 3:
-            polled = await consumer.getmany(timeout_ms=1000)
-            idle = 0 if polled else idle + 1
-            for records in polled.values():
-                for record in records:
-                    latest[record.key.decode()] = record.value
-    finally:
-        await consumer.stop()
-    return latest
+    return {record.key.decode(): record.value for record in await read_records(bootstrap, state_topic)}
 
 
 def book_rows(engine: Any) -> dict[str, tuple[Any, ...]]:
@@ -154,10 +153,7 @@ def test_crash_loop_output_is_exactly_replay(kafka_bootstrap: str, tmp_path: Pat
     rng = random.Random(seed)
     topic, out, log = "crash-ticks", tmp_path / "bars", tmp_path / "service.log"
     asyncio.run(_create_topic(kafka_bootstrap, topic))
-    # The demo feed spans 75 minutes of event time: at 150x it arrives over about 30 s.
-    publisher = threading.Thread(
-        target=lambda: asyncio.run(publish_feed([DEMO], kafka(kafka_bootstrap), topic, partitions=8, speed=150.0))
-    )
+    publisher = paced_publisher(kafka_bootstrap, topic)
     publisher.start()
     kills = 0
     try:
@@ -193,10 +189,7 @@ def test_broker_restart_mid_run(kafka_broker: Broker, tmp_path: Path) -> None:
     proc = spawn([*service_args(bootstrap, topic, "g-restart", out, port), "--exit-when-idle", "40s"], log)
     try:
         wait_ready(port, proc, log)
-        deadline = time.monotonic() + 60
-        while consumed(port) < 30_000:  # mid-run: it has started on the feed, far from done
-            assert time.monotonic() < deadline and proc.poll() is None, log.read_text()[-3000:]
-            time.sleep(0.1)
+        wait_consumed(port, proc, log, 30_000)  # mid-run: it has started on the feed, far from done
         kafka_broker.stop()
         time.sleep(3)
         assert proc.poll() is None, "the service must survive the outage"
@@ -216,9 +209,7 @@ def test_rebalance_second_instance_joins_and_leaves(kafka_bootstrap: str, tmp_pa
     later leaves with SIGTERM (handing them back); the output is exact."""
     topic, out = "rebalance-ticks", tmp_path / "bars"
     asyncio.run(_create_topic(kafka_bootstrap, topic))
-    publisher = threading.Thread(  # paced, so that input keeps arriving while the group changes
-        target=lambda: asyncio.run(publish_feed([DEMO], kafka(kafka_bootstrap), topic, partitions=8, speed=150.0))
-    )
+    publisher = paced_publisher(kafka_bootstrap, topic)  # input keeps arriving while the group changes
     port_a, port_b = free_port_pair(), free_port_pair()
     log_a, log_b = tmp_path / "a.log", tmp_path / "b.log"
     first = spawn([*service_args(kafka_bootstrap, topic, "g-rebalance", out, port_a), "--exit-when-idle", "10s"], log_a)
@@ -226,15 +217,10 @@ def test_rebalance_second_instance_joins_and_leaves(kafka_bootstrap: str, tmp_pa
     try:
         wait_ready(port_a, first, log_a)
         publisher.start()
-        while consumed(port_a) < 20_000:
-            assert first.poll() is None, log_a.read_text()[-3000:]
-            time.sleep(0.1)
+        wait_consumed(port_a, first, log_a, 20_000, timeout_s=180)
         second = spawn(service_args(kafka_bootstrap, topic, "g-rebalance", out, port_b), log_b)
         wait_ready(port_b, second, log_b)
-        deadline = time.monotonic() + 60
-        while consumed(port_b) < 2_000:
-            assert time.monotonic() < deadline and second.poll() is None, log_b.read_text()[-3000:]
-            time.sleep(0.1)
+        wait_consumed(port_b, second, log_b, 2_000)
         second.send_signal(signal.SIGTERM)
         assert second.wait(timeout=30) == 0, log_b.read_text()[-3000:]
         publisher.join()
@@ -303,9 +289,7 @@ def test_fenced_partition_is_taken_back_from_its_checkpoint(kafka_bootstrap: str
 
     topic, out, log = "fence-ticks", tmp_path / "bars", tmp_path / "service.log"
     asyncio.run(_create_topic(kafka_bootstrap, topic))
-    publisher = threading.Thread(
-        target=lambda: asyncio.run(publish_feed([DEMO], kafka(kafka_bootstrap), topic, partitions=8, speed=150.0))
-    )
+    publisher = paced_publisher(kafka_bootstrap, topic)
     port = free_port_pair()
     proc = spawn([*service_args(kafka_bootstrap, topic, "g-fence", out, port), "--exit-when-idle", "20s"], log)
 
@@ -317,9 +301,7 @@ def test_fenced_partition_is_taken_back_from_its_checkpoint(kafka_bootstrap: str
     try:
         wait_ready(port, proc, log)
         publisher.start()
-        while consumed(port) < 20_000:
-            assert proc.poll() is None, log.read_text()[-3000:]
-            time.sleep(0.1)
+        wait_consumed(port, proc, log, 20_000, timeout_s=180)
         asyncio.run(fence())
         publisher.join()
         assert proc.wait(timeout=240) == 0, log.read_text()[-4000:]

@@ -52,8 +52,8 @@ def parquet_frame(directory: Path) -> pd.DataFrame:
     return pd.read_parquet(directory).sort_values(KEY).reset_index(drop=True)
 
 
-async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
-    """The bar topic, read_committed, as a frame with the Parquet columns and types."""
+async def read_records(bootstrap: str, topic: str) -> list[Any]:
+    """Every committed record of ``topic`` (read_committed), until three polls bring nothing."""
     from aiokafka import AIOKafkaConsumer
 
     consumer = AIOKafkaConsumer(
@@ -64,21 +64,28 @@ async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
         enable_auto_commit=False,
     )
     await consumer.start()
-    rows: list[dict[str, Any]] = []
+    out: list[Any] = []
     try:
         idle_polls = 0
         while idle_polls < 3:
             polled = await consumer.getmany(timeout_ms=1000)
             idle_polls = 0 if polled else idle_polls + 1
             for records in polled.values():
-                for record in records:
-                    bar = msgpack.unpackb(record.value)
-                    assert list(bar) == list(BAR_COLUMNS)  # exactly the Parquet columns
-                    assert record.key.decode("utf-8") == bar["symbol"]
-                    assert dict(record.headers)["spec"].decode("utf-8") == bar["spec"]
-                    rows.append(bar)
+                out.extend(records)
     finally:
         await consumer.stop()
+    return out
+
+
+async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
+    """The bar topic, read_committed, as a frame with the Parquet columns and types."""
+    rows: list[dict[str, Any]] = []
+    for record in await read_records(bootstrap, topic):
+        bar = msgpack.unpackb(record.value)
+        assert list(bar) == list(BAR_COLUMNS)  # exactly the Parquet columns
+        assert record.key.decode("utf-8") == bar["symbol"]
+        assert dict(record.headers)["spec"].decode("utf-8") == bar["spec"]
+        rows.append(bar)
     frame = pd.DataFrame(rows, columns=list(BAR_COLUMNS))
     for column in ("start", "end"):
         frame[column] = pd.to_datetime(frame[column], unit="ns", utc=True)
