@@ -433,11 +433,14 @@ class ExactlyOnce:
             committed = await source.committed_offset(stream)
             rewound = max(0, (committed or 0) - (owner.offset or 0))
         self.metrics.offsets_rewound.inc(rewound)
-        end = await source.end_offset(stream)
+        # No end-offset lookup for the log line: at the end of a partition it queues
+        # behind the consumer's long-poll fetch (up to fetch_max_wait_ms, 0.5 s) on the
+        # same connection, and eight of those in one assignment callback outlasted the
+        # session timeout, so the group kept evicting the member (a rebalance loop).
         where = f"offset {owner.offset:,}" if owner.offset is not None else "the beginning"
         origin = f"its checkpoint (epoch {owner.epoch})" if owner.checkpoint is not None else "empty state"
         log.info(
-            "%s: restored from %s on %s at %s: %d books, %d open bars; %d records rewound, %d to replay to the end",
+            "%s: restored from %s on %s at %s: %d books, %d open bars; %d records rewound",
             stream,
             origin,
             reason,
@@ -445,7 +448,6 @@ class ExactlyOnce:
             engine.symbols,
             engine.open_bar_count(),
             rewound,
-            max(0, end - (owner.offset or 0)),
         )
 
     # -- producers ------------------------------------------------------------------------

@@ -281,14 +281,6 @@ class KafkaSource:
         offset: int | None = await self._consumer.committed(TopicPartition(state.topic, state.partition))
         return offset
 
-    async def end_offset(self, stream: str) -> int:
-        from aiokafka.structs import TopicPartition
-
-        state = self.partitions[stream]
-        tp = TopicPartition(state.topic, state.partition)
-        ends = await self._consumer.end_offsets([tp])
-        return int(ends[tp])
-
     def _refresh_highwaters(self) -> None:
         from aiokafka.structs import TopicPartition
 
