@@ -63,6 +63,10 @@ def test_exception_tree() -> None:
 
 @pytest.mark.skipif(os.environ.get("CI") != "true", reason="CI installs the compiled build; a checkout may not")
 def test_hot_path_is_compiled_in_ci() -> None:
-    # pip install . compiles the per-tick modules with mypyc (deploy/build/barsmith_build.py).
+    # pip install . compiles the per-tick modules with mypyc (deploy/build/barsmith_build.py)...
     suffixes = tuple(importlib.machinery.EXTENSION_SUFFIXES)
     assert barsmith.engine.__file__ is not None and barsmith.engine.__file__.endswith(suffixes)
+    # ... and builds the record scanner written in C.
+    from barsmith.ingest.fastwire import new_scanner
+
+    assert new_scanner() is not None

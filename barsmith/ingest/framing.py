@@ -19,7 +19,7 @@ from typing import IO, Any, Final
 
 import msgpack
 
-from barsmith.ingest.fastwire import INCOMPLETE, WireScanner
+from barsmith.ingest.fastwire import INCOMPLETE, NOT_SIMPLE, new_scanner
 from barsmith.ingest.ticks import RejectReason
 
 READ_BLOCK_BYTES: Final = 1 << 20
@@ -71,7 +71,8 @@ class FrameReader:
     """Decode a binary stream into batches of ``(records, offsets, rejects)``.
 
     Records of the usual shape are decoded straight into :class:`Tick` objects (or
-    lists of them, for a batched record) by :class:`WireScanner`; any other record
+    lists of them, for a batched record) by the record scanner
+    (:mod:`barsmith.ingest.fastwire`); any other record
     is decoded by msgpack into plain objects, which the engine validates the
     general way. Offsets are where each record starts.
     """
@@ -84,7 +85,7 @@ class FrameReader:
         self._pos = 0  # next record's index in _buf
         self._eof = False
         self._done = False
-        self._scanner = WireScanner()
+        self._scanner = new_scanner()
 
     @property
     def done(self) -> bool:
@@ -109,9 +110,10 @@ class FrameReader:
             pos = self._pos
             base = self._base
             end = len(buf)
-            result = INCOMPLETE
+            # Without a scanner every record takes the general path below.
+            result = INCOMPLETE if scanner is not None else NOT_SIMPLE
             # Hot loop: one scan and two appends per record.
-            while pos < end and len(objects) < max_records:
+            while scanner is not None and pos < end and len(objects) < max_records:
                 result = scanner.scan_record(buf, pos)
                 if result < 0:
                     break

@@ -17,7 +17,7 @@ from typing import Any
 import msgpack
 
 from barsmith.errors import ConfigError, InputError
-from barsmith.ingest.fastwire import WireScanner
+from barsmith.ingest.fastwire import new_scanner
 from barsmith.ingest.framing import new_unpacker
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
@@ -110,7 +110,7 @@ class KafkaSource:
         self.on_assigned: Callable[[list[str]], Any] | None = None
         self._consumer: Any = None
         self._stopped = False
-        self._scanner = WireScanner()
+        self._scanner = new_scanner()
         self._failure: BaseException | None = None
         # Exactly-once: new partitions stay paused until their owner has restored the
         # checkpoint and sought to it, so no record is read from the wrong place.
@@ -294,15 +294,16 @@ class KafkaSource:
         positions: list[int] = []
         rejects: list[Reject] = []
         unpackb = msgpack.unpackb
-        scan = self._scanner.scan_record
-        scanner = self._scanner
+        scan = self._scanner.scan_value if self._scanner is not None else None
         for record in records:
             value = record.value
             # Usual shapes are decoded straight into ticks (see barsmith.ingest.fastwire).
-            if value is not None and scan(value, 0) == len(value):
-                values.append(scanner.tick if scanner.batch is None else scanner.batch)
-                positions.append(record.offset)
-                continue
+            if scan is not None and value is not None:
+                ticks = scan(value)
+                if ticks is not None:
+                    values.append(ticks)
+                    positions.append(record.offset)
+                    continue
             try:
                 # The general way; the checked decoder below explains failures precisely.
                 values.append(unpackb(value, raw=False, strict_map_key=False))

@@ -1,10 +1,10 @@
 """PEP 517 build backend for barsmith: setuptools, plus mypyc for the hot path.
 
 The per-tick modules (validation, book, bar accumulators, engine, framing) are plain
-typed Python; this backend compiles them to C extensions with mypyc so that a
-normal ``pip install .`` gets the fast engine. Set ``BARSMITH_PURE_PYTHON=1`` to
-build without compiling (for editable development: an in-place extension would
-shadow edits to its ``.py`` file).
+typed Python; this backend compiles them to C extensions with mypyc, and builds
+the record scanner written in C, so that a normal ``pip install .`` gets the fast
+engine. Set ``BARSMITH_PURE_PYTHON=1`` to build without compiling (for editable
+development: an in-place extension would shadow edits to its ``.py`` file).
 """
 
 from __future__ import annotations
@@ -16,12 +16,16 @@ from setuptools import build_meta as _setuptools_backend
 
 HOT_MODULES = [
     "barsmith/ingest/ticks.py",
-    "barsmith/ingest/fastwire.py",
     "barsmith/ingest/framing.py",
     "barsmith/book/book.py",
     "barsmith/bars/bar.py",
     "barsmith/engine.py",
 ]
+
+
+# The record scanner, in C (see barsmith/ingest/fastwire.py for why).
+SCANNER_MODULE = "barsmith.ingest._wirescan"
+SCANNER_SOURCE = "barsmith/ingest/_wirescan.c"
 
 
 def _compile_hot_modules() -> bool:
@@ -35,6 +39,7 @@ class _Backend(_setuptools_backend._BuildMetaBackend):
         ext_modules: list[Any] = []
         if _compile_hot_modules():
             from mypyc.build import mypycify
+            from setuptools import Extension
 
             # --config-file= : the project's mypy config loads plugins that the
             # isolated build environment does not have; the hot modules need none.
@@ -42,6 +47,7 @@ class _Backend(_setuptools_backend._BuildMetaBackend):
                 ["--config-file=", "--ignore-missing-imports", "--follow-imports=silent", *HOT_MODULES],
                 opt_level="3",
             )
+            ext_modules.append(Extension(SCANNER_MODULE, [SCANNER_SOURCE], extra_compile_args=["-O3"]))
         setup(ext_modules=ext_modules)
 
 

@@ -1,4 +1,4 @@
-"""The direct decoder accepts a record only when it equals what the validator builds."""
+"""The record scanner accepts a record only when it equals what the validator builds."""
 
 from __future__ import annotations
 
@@ -6,12 +6,27 @@ import math
 from typing import Any
 
 import msgpack
+import pytest
 from factories import T0, tick
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from barsmith.ingest.fastwire import INCOMPLETE, NOT_SIMPLE, WireScanner
-from barsmith.ingest.ticks import MalformedTickError, decode_tick
+from barsmith.ingest.fastwire import INCOMPLETE, NOT_SIMPLE, new_scanner
+from barsmith.ingest.ticks import MalformedTickError, Tick, decode_tick
+
+# The scanner is C; a checkout tested without building it has none (CI builds it and
+# test_public_api checks that it is there).
+pytestmark = pytest.mark.skipif(new_scanner() is None, reason="the C record scanner is not built")
+
+
+SHARED = new_scanner()
+
+
+def scanner() -> Any:
+    made = new_scanner()
+    assert made is not None
+    return made
+
 
 numbers = st.one_of(
     st.floats(allow_nan=True, allow_infinity=True, width=64),
@@ -54,8 +69,8 @@ def test_fast_path_agrees_with_the_validator(rec: dict[str, Any], single_float: 
         data = msgpack.packb(rec, use_single_float=single_float)  # float32 (0xca) encodings too
     except OverflowError:
         data = msgpack.packb(rec)
-    scanner = WireScanner()
-    end = scanner.scan(data, 0)
+    scan = SHARED  # one scanner for every example: its symbol cache is exercised too
+    end = scan.scan(data, 0)
     try:
         expected = decode_tick(msgpack.unpackb(data, strict_map_key=False))
     except MalformedTickError:
@@ -64,10 +79,22 @@ def test_fast_path_agrees_with_the_validator(rec: dict[str, Any], single_float: 
     if end == NOT_SIMPLE:
         return  # allowed: the general path handles it
     assert end == len(data)
-    got = scanner.tick
-    assert got is not None
+    assert_same_tick(scan.tick, expected)
+    # Alone in a value, and as a batch of two, it decodes the same.
+    assert_same_tick(scan.scan_value(data), expected)
+    batch = scan.scan_value(msgpack.packb([rec, rec], use_single_float=single_float))
+    assert type(batch) is list and len(batch) == 2
+    for item in batch:
+        assert_same_tick(item, expected)
+
+
+def assert_same_tick(got: Tick | None, expected: Tick) -> None:
+    assert type(got) is Tick
     for name in Tick_fields:
         assert same(getattr(got, name), getattr(expected, name)), name
+        # Bit for bit: -0.0 stays -0.0.
+        if isinstance(getattr(expected, name), float):
+            assert math.copysign(1.0, getattr(got, name)) == math.copysign(1.0, getattr(expected, name)), name
 
 
 Tick_fields = (
@@ -77,7 +104,56 @@ Tick_fields = (
 
 def test_cut_records_are_incomplete_not_wrong() -> None:
     data = msgpack.packb(tick(bid_px=1.5, bid_qty=2.0, trade_px=1.5, trade_qty=1.0))
-    scanner = WireScanner()
-    assert scanner.scan(data, 0) == len(data)
+    scan = scanner()
+    assert scan.scan(data, 0) == len(data)
     for cut in range(1, len(data)):
-        assert scanner.scan(data[:cut], 0) == INCOMPLETE
+        assert scan.scan(data[:cut], 0) == INCOMPLETE
+        assert scan.scan_value(data[:cut]) is None
+    batch = msgpack.packb([msgpack.unpackb(data)] * 3)
+    assert scan.scan_record(batch, 0) == len(batch)
+    for cut in range(1, len(batch)):
+        assert scan.scan_record(batch[:cut], 0) == INCOMPLETE
+
+
+def test_trailing_bytes_and_empty_batches_take_the_general_path() -> None:
+    data = msgpack.packb(tick(trade_px=1.5, trade_qty=1.0))
+    scan = scanner()
+    assert scan.scan_value(data + b"\xc0") is None
+    assert scan.scan_value(msgpack.packb([])) is None
+    assert scan.scan_record(msgpack.packb([]), 0) == NOT_SIMPLE
+    # A valid record after some bytes: the position is honoured.
+    assert scan.scan(b"\x00" + data, 1) == len(data) + 1
+
+
+def test_constants_agree_with_the_extension() -> None:
+    from barsmith.ingest import _wirescan
+
+    assert (_wirescan.NOT_SIMPLE, _wirescan.INCOMPLETE) == (NOT_SIMPLE, INCOMPLETE)
+
+
+def test_doubles_decode_bit_for_bit() -> None:
+    """Binary64 values at the edges of the range (IEEE 754 limits, common practice)
+    come out bit-identical to the validator's (msgpack's) decoding."""
+    edges = [0.0, -0.0, 5e-324, 2.2250738585072009e-308, 2.2250738585072014e-308, 1.7976931348623157e308]
+    edges += [0.1, 1.0, 3.0e-5, 123456.789, 2.0**52 + 1, 2.0**53]
+    scan = scanner()
+    for value in edges:
+        rec = tick(trade_px=1.0, trade_qty=1.0, bid_qty=value)
+        data = msgpack.packb(rec)
+        assert scan.scan(data, 0) == len(data), value
+        assert_same_tick(scan.tick, decode_tick(msgpack.unpackb(data)))
+    for value in (-1.5, math.inf, -math.inf, math.nan):  # the validator rejects these
+        assert scan.scan(msgpack.packb(tick(trade_px=1.0, trade_qty=1.0, bid_qty=value)), 0) == NOT_SIMPLE
+
+
+def test_symbol_cache_gives_each_symbol_its_own_text() -> None:
+    """Many symbols through one scanner (its cache has fewer slots than symbols)."""
+    scan = scanner()
+    names = [f"SYM{i:04d}.KMX" for i in range(2000)] + ["É.KMX", "Ω" * 64]
+    for _ in range(2):
+        for name in names:
+            data = msgpack.packb(tick(sym=name))
+            assert scan.scan(data, 0) == len(data)
+            assert scan.tick.sym == name
+    too_long = msgpack.packb(tick(sym="Ω" * 65))
+    assert scan.scan(too_long, 0) == NOT_SIMPLE

@@ -1,0 +1,628 @@
+/* The record scanner: msgpack bytes of a tick (or an array of ticks) -> Tick objects.
+ *
+ * This is the decoder of the usual record, written in C because it runs once per
+ * tick and decides the service's throughput. It accepts a record only when every
+ * field passes exactly the checks of barsmith.ingest.ticks.decode_tick; anything
+ * else (an unknown key, an unusual encoding, a bad value) makes it answer
+ * NOT_SIMPLE, and the caller decodes that record the general way, which gives the
+ * same answer and a precise reject reason. A record that runs past the end of the
+ * buffer answers INCOMPLETE. So this can only be faster than the general path,
+ * never different; tests/ingest/test_fastwire.py pins that with generated records.
+ *
+ * The Python-facing API is described in _wirescan.pyi.
+ */
+#define PY_SSIZE_T_CLEAN
+#include <Python.h>
+#include <structmember.h>
+#include <math.h>
+#include <stdint.h>
+#include <string.h>
+
+#define NOT_SIMPLE (-1)
+#define INCOMPLETE (-2)
+
+#define MAX_SYMBOL_CHARS 64
+
+/* Tick.present bits (barsmith.ingest.ticks). */
+#define BID_PX 1
+#define BID_QTY 2
+#define ASK_PX 4
+#define ASK_QTY 8
+
+enum field {
+    F_UNKNOWN = 0, F_SYM, F_TS, F_SEQ, F_KIND,
+    F_BID_PX, F_BID_QTY, F_ASK_PX, F_ASK_QTY, F_TRADE_PX, F_TRADE_QTY
+};
+
+enum value_kind { V_NIL, V_INT, V_FLOAT, V_STR };
+
+/* Integers above this are not converted to a float here: (double)u could round
+ * differently from Python's float(int) only beyond 2**53; the general path decides. */
+#define EXACT_INT_LIMIT (((uint64_t)1) << 53)
+
+static PyObject *tick_type = NULL; /* barsmith.ingest.ticks.Tick */
+
+#define CACHE_SLOTS 256
+
+typedef struct {
+    PyObject_HEAD
+    PyObject *tick;  /* the last scanned tick, or None */
+    PyObject *batch; /* the last scanned batch (a list of ticks), or None */
+    /* Symbols repeat: a direct-mapped cache of decoded, validated symbols, checked
+     * in place, saves decoding the same bytes for nearly every message. */
+    PyObject *slot_raw[CACHE_SLOTS];  /* bytes or NULL */
+    PyObject *slot_text[CACHE_SLOTS]; /* str or NULL */
+} Scanner;
+
+typedef struct {
+    int kind;
+    uint64_t u;         /* V_INT */
+    double d;           /* V_FLOAT */
+    const uint8_t *str; /* V_STR: the bytes, not decoded */
+    Py_ssize_t str_len;
+} Value;
+
+static uint64_t
+be_uint(const uint8_t *p, int size)
+{
+    uint64_t v = 0;
+    for (int i = 0; i < size; i++) {
+        v = (v << 8) | p[i];
+    }
+    return v;
+}
+
+/* One scalar at data[pos]; returns the position after it, NOT_SIMPLE or INCOMPLETE. */
+static Py_ssize_t
+read_value(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Value *out)
+{
+    if (pos >= end) {
+        return INCOMPLETE;
+    }
+    uint8_t code = data[pos];
+    if (code <= 0x7F) {
+        out->kind = V_INT;
+        out->u = code;
+        return pos + 1;
+    }
+    if (code >= 0xA0 && code <= 0xBF) {
+        Py_ssize_t size = code - 0xA0;
+        if (pos + 1 + size > end) {
+            return INCOMPLETE;
+        }
+        out->kind = V_STR;
+        out->str = data + pos + 1;
+        out->str_len = size;
+        return pos + 1 + size;
+    }
+    if (code == 0xCB) {
+        if (pos + 9 > end) {
+            return INCOMPLETE;
+        }
+        uint64_t bits = be_uint(data + pos + 1, 8);
+        double d;
+        memcpy(&d, &bits, sizeof d);
+        out->kind = V_FLOAT;
+        out->d = d;
+        return pos + 9;
+    }
+    if (code == 0xC0) {
+        out->kind = V_NIL;
+        return pos + 1;
+    }
+    if (code >= 0xCC && code <= 0xCF) {
+        int size = 1 << (code - 0xCC);
+        if (pos + 1 + size > end) {
+            return INCOMPLETE;
+        }
+        out->kind = V_INT;
+        out->u = be_uint(data + pos + 1, size);
+        return pos + 1 + size;
+    }
+    if (code == 0xCA) {
+        if (pos + 5 > end) {
+            return INCOMPLETE;
+        }
+        uint32_t bits = (uint32_t)be_uint(data + pos + 1, 4);
+        float f;
+        memcpy(&f, &bits, sizeof f);
+        out->kind = V_FLOAT;
+        out->d = (double)f;
+        return pos + 5;
+    }
+    if (code == 0xD9) {
+        if (pos + 2 > end) {
+            return INCOMPLETE;
+        }
+        Py_ssize_t size = data[pos + 1];
+        if (pos + 2 + size > end) {
+            return INCOMPLETE;
+        }
+        out->kind = V_STR;
+        out->str = data + pos + 2;
+        out->str_len = size;
+        return pos + 2 + size;
+    }
+    return NOT_SIMPLE; /* negative ints, bools, bin, arrays, maps, ext: the general path */
+}
+
+static int
+key_is(const uint8_t *key, Py_ssize_t size, const char *word, Py_ssize_t word_len)
+{
+    return size == word_len && memcmp(key, word, (size_t)word_len) == 0;
+}
+
+static enum field
+field_of(const uint8_t *key, Py_ssize_t size)
+{
+    switch (size) {
+    case 2:
+        return key_is(key, size, "ts", 2) ? F_TS : F_UNKNOWN;
+    case 3:
+        if (key_is(key, size, "sym", 3)) return F_SYM;
+        if (key_is(key, size, "seq", 3)) return F_SEQ;
+        return F_UNKNOWN;
+    case 4:
+        return key_is(key, size, "kind", 4) ? F_KIND : F_UNKNOWN;
+    case 6:
+        if (key_is(key, size, "bid_px", 6)) return F_BID_PX;
+        if (key_is(key, size, "ask_px", 6)) return F_ASK_PX;
+        return F_UNKNOWN;
+    case 7:
+        if (key_is(key, size, "bid_qty", 7)) return F_BID_QTY;
+        if (key_is(key, size, "ask_qty", 7)) return F_ASK_QTY;
+        return F_UNKNOWN;
+    case 8:
+        return key_is(key, size, "trade_px", 8) ? F_TRADE_PX : F_UNKNOWN;
+    case 9:
+        return key_is(key, size, "trade_qty", 9) ? F_TRADE_QTY : F_UNKNOWN;
+    default:
+        return F_UNKNOWN;
+    }
+}
+
+/* The symbol for these bytes as a new reference; NULL with no error set when it is
+ * not a valid symbol (bad UTF-8, empty, too long, not printable); NULL with an
+ * error set on a Python error. */
+static PyObject *
+symbol_of(Scanner *self, const uint8_t *raw, Py_ssize_t size)
+{
+    if (size == 0) {
+        return NULL;
+    }
+    unsigned slot = (unsigned)(size * 31 + raw[0] * 7 + raw[size - 1] * 13 + raw[size >> 1]) & (CACHE_SLOTS - 1);
+    PyObject *cached = self->slot_raw[slot];
+    if (cached != NULL && PyBytes_GET_SIZE(cached) == size && memcmp(PyBytes_AS_STRING(cached), raw, (size_t)size) == 0) {
+        PyObject *text = self->slot_text[slot];
+        Py_INCREF(text);
+        return text;
+    }
+    PyObject *text = PyUnicode_DecodeUTF8((const char *)raw, size, "strict");
+    if (text == NULL) {
+        if (PyErr_ExceptionMatches(PyExc_UnicodeDecodeError)) {
+            PyErr_Clear();
+        }
+        return NULL;
+    }
+    Py_ssize_t chars = PyUnicode_GET_LENGTH(text);
+    int ok = chars > 0 && chars <= MAX_SYMBOL_CHARS;
+    if (ok) {
+        /* str.isprintable(), as the validator checks it. */
+        PyObject *printable = PyObject_CallMethod(text, "isprintable", NULL);
+        if (printable == NULL) {
+            Py_DECREF(text);
+            return NULL;
+        }
+        ok = printable == Py_True;
+        Py_DECREF(printable);
+    }
+    if (!ok) {
+        Py_DECREF(text);
+        return NULL;
+    }
+    PyObject *key = PyBytes_FromStringAndSize((const char *)raw, size);
+    if (key == NULL) {
+        Py_DECREF(text);
+        return NULL;
+    }
+    Py_XSETREF(self->slot_raw[slot], key);
+    Py_INCREF(text);
+    Py_XSETREF(self->slot_text[slot], text);
+    return text;
+}
+
+static PyObject *
+float_or_none(int has, double value)
+{
+    if (!has) {
+        Py_RETURN_NONE;
+    }
+    return PyFloat_FromDouble(value);
+}
+
+/* Decode one tick map at data[pos] into *tick (a new reference). Returns the position
+ * after it, NOT_SIMPLE, INCOMPLETE, or -3 with a Python error set. */
+static Py_ssize_t
+scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **tick)
+{
+    if (pos >= end) {
+        return INCOMPLETE;
+    }
+    uint8_t header = data[pos];
+    if (header < 0x80 || header > 0x8F) {
+        return NOT_SIMPLE; /* not a fixmap (a batch, a big map, or not a map at all) */
+    }
+    int count = header - 0x80;
+    pos += 1;
+
+    const uint8_t *sym_raw = NULL;
+    Py_ssize_t sym_len = 0;
+    int64_t ts = -1, seq = -1;
+    int is_snapshot = 0, kind_seen = 0, present = 0;
+    /* has[i]: the field carried a number (not nil); num[i]: that number. */
+    int has[F_TRADE_QTY + 1] = {0};
+    double num[F_TRADE_QTY + 1] = {0};
+
+    for (int i = 0; i < count; i++) {
+        if (pos >= end) {
+            return INCOMPLETE;
+        }
+        uint8_t key_header = data[pos];
+        if (key_header < 0xA0 || key_header > 0xBF) {
+            return NOT_SIMPLE;
+        }
+        Py_ssize_t key_len = key_header - 0xA0;
+        Py_ssize_t key_end = pos + 1 + key_len;
+        if (key_end > end) {
+            return INCOMPLETE;
+        }
+        enum field field = field_of(data + pos + 1, key_len);
+        if (field == F_UNKNOWN) {
+            return NOT_SIMPLE; /* an unknown key: let the general path skip it */
+        }
+        Value v = {V_NIL, 0, 0.0, NULL, 0};
+        pos = read_value(data, key_end, end, &v);
+        if (pos < 0) {
+            return pos;
+        }
+        switch (field) {
+        case F_SYM:
+            if (v.kind != V_STR) {
+                return NOT_SIMPLE;
+            }
+            sym_raw = v.str; /* decoded once the record is known to be whole */
+            sym_len = v.str_len;
+            break;
+        case F_TS:
+            if (v.kind != V_INT || v.u == 0 || v.u > (uint64_t)INT64_MAX) {
+                return NOT_SIMPLE;
+            }
+            ts = (int64_t)v.u;
+            break;
+        case F_SEQ:
+            if (v.kind != V_INT || v.u > (uint64_t)INT64_MAX) {
+                return NOT_SIMPLE;
+            }
+            seq = (int64_t)v.u;
+            break;
+        case F_KIND:
+            if (v.kind != V_STR) {
+                return NOT_SIMPLE;
+            }
+            if (v.str_len == 5 && memcmp(v.str, "delta", 5) == 0) {
+                is_snapshot = 0;
+            } else if (v.str_len == 8 && memcmp(v.str, "snapshot", 8) == 0) {
+                is_snapshot = 1;
+            } else {
+                return NOT_SIMPLE;
+            }
+            kind_seen = 1;
+            break;
+        default: {
+            /* Prices > 0, quantities >= 0 (trade quantity > 0), finite; nil allowed for
+             * the quote fields. A trade's nil means "no trade field". */
+            double value = 0.0;
+            int number = 0;
+            if (v.kind == V_NIL) {
+                number = 0;
+            } else if (v.kind == V_FLOAT || v.kind == V_INT) {
+                if (v.kind == V_INT) {
+                    if (v.u > EXACT_INT_LIMIT) {
+                        return NOT_SIMPLE;
+                    }
+                    value = (double)v.u;
+                } else {
+                    value = v.d;
+                }
+                if (!isfinite(value)) {
+                    return NOT_SIMPLE;
+                }
+                int strictly_positive = field == F_BID_PX || field == F_ASK_PX || field == F_TRADE_PX
+                                        || field == F_TRADE_QTY;
+                if (!(strictly_positive ? value > 0.0 : value >= 0.0)) {
+                    return NOT_SIMPLE;
+                }
+                number = 1;
+            } else {
+                return NOT_SIMPLE;
+            }
+            has[field] = number;
+            num[field] = value;
+            switch (field) {
+            case F_BID_PX: present |= BID_PX; break;
+            case F_BID_QTY: present |= BID_QTY; break;
+            case F_ASK_PX: present |= ASK_PX; break;
+            case F_ASK_QTY: present |= ASK_QTY; break;
+            default: break;
+            }
+            break;
+        }
+        }
+    }
+    if (ts < 0 || seq < 0 || !kind_seen || sym_raw == NULL) {
+        return NOT_SIMPLE;
+    }
+    if (has[F_TRADE_PX] != has[F_TRADE_QTY]) {
+        return NOT_SIMPLE;
+    }
+    PyObject *sym = symbol_of(self, sym_raw, sym_len);
+    if (sym == NULL) {
+        return PyErr_Occurred() ? -3 : NOT_SIMPLE;
+    }
+    PyObject *args[11];
+    args[0] = sym;
+    args[1] = PyLong_FromLongLong(ts);
+    args[2] = PyLong_FromLongLong(seq);
+    args[3] = is_snapshot ? Py_True : Py_False;
+    Py_INCREF(args[3]);
+    args[4] = PyLong_FromLong(present);
+    args[5] = float_or_none(has[F_BID_PX], num[F_BID_PX]);
+    args[6] = float_or_none(has[F_BID_QTY], num[F_BID_QTY]);
+    args[7] = float_or_none(has[F_ASK_PX], num[F_ASK_PX]);
+    args[8] = float_or_none(has[F_ASK_QTY], num[F_ASK_QTY]);
+    args[9] = float_or_none(has[F_TRADE_PX], num[F_TRADE_PX]);
+    args[10] = float_or_none(has[F_TRADE_QTY], num[F_TRADE_QTY]);
+    PyObject *result = NULL;
+    int complete = 1;
+    for (int i = 0; i < 11; i++) {
+        if (args[i] == NULL) {
+            complete = 0;
+        }
+    }
+    if (complete) {
+        result = PyObject_Vectorcall(tick_type, args, 11, NULL);
+    }
+    for (int i = 0; i < 11; i++) {
+        Py_XDECREF(args[i]);
+    }
+    if (result == NULL) {
+        return -3;
+    }
+    *tick = result;
+    return pos;
+}
+
+static int
+parse_args(PyObject *const *args, Py_ssize_t nargs, const char *name, Py_buffer *view, Py_ssize_t *pos)
+{
+    if (nargs != 2) {
+        PyErr_Format(PyExc_TypeError, "%s() takes 2 arguments (data, pos)", name);
+        return -1;
+    }
+    *pos = PyLong_AsSsize_t(args[1]);
+    if (*pos == -1 && PyErr_Occurred()) {
+        return -1;
+    }
+    if (*pos < 0) {
+        PyErr_SetString(PyExc_ValueError, "pos must be >= 0");
+        return -1;
+    }
+    return PyObject_GetBuffer(args[0], view, PyBUF_SIMPLE);
+}
+
+static PyObject *
+Scanner_scan(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Py_buffer view;
+    Py_ssize_t pos;
+    if (parse_args(args, nargs, "scan", &view, &pos) < 0) {
+        return NULL;
+    }
+    PyObject *tick = NULL;
+    Py_ssize_t result = scan_tick(self, (const uint8_t *)view.buf, pos, view.len, &tick);
+    PyBuffer_Release(&view);
+    if (result == -3) {
+        return NULL;
+    }
+    Py_CLEAR(self->batch);
+    if (result >= 0) {
+        Py_XSETREF(self->tick, tick);
+    }
+    return PyLong_FromSsize_t(result);
+}
+
+/* A tick map or an array of them at data[pos]: *out is a Tick or a list of ticks. */
+static Py_ssize_t
+scan_any(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out)
+{
+    uint8_t header = pos < end ? data[pos] : 0;
+    if (!((header >= 0x90 && header <= 0x9F) || header == 0xDC)) {
+        return scan_tick(self, data, pos, end, out);
+    }
+    Py_ssize_t count;
+    if (header == 0xDC) {
+        if (pos + 3 > end) {
+            return INCOMPLETE;
+        }
+        count = ((Py_ssize_t)data[pos + 1] << 8) | data[pos + 2];
+        pos += 3;
+    } else {
+        count = header - 0x90;
+        pos += 1;
+    }
+    if (count == 0) {
+        return NOT_SIMPLE;
+    }
+    PyObject *ticks = PyList_New(count);
+    if (ticks == NULL) {
+        return -3;
+    }
+    for (Py_ssize_t i = 0; i < count; i++) {
+        PyObject *tick = NULL;
+        pos = scan_tick(self, data, pos, end, &tick);
+        if (pos < 0) {
+            /* Unfilled slots are NULL, which list deallocation allows. */
+            Py_DECREF(ticks);
+            return pos;
+        }
+        PyList_SET_ITEM(ticks, i, tick);
+    }
+    *out = ticks;
+    return pos;
+}
+
+static PyObject *
+Scanner_scan_record(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    Py_buffer view;
+    Py_ssize_t pos;
+    if (parse_args(args, nargs, "scan_record", &view, &pos) < 0) {
+        return NULL;
+    }
+    PyObject *obj = NULL;
+    Py_ssize_t result = scan_any(self, (const uint8_t *)view.buf, pos, view.len, &obj);
+    PyBuffer_Release(&view);
+    if (result == -3) {
+        return NULL;
+    }
+    if (result >= 0) {
+        if (PyList_CheckExact(obj)) {
+            Py_XSETREF(self->batch, obj);
+            Py_CLEAR(self->tick);
+        } else {
+            Py_XSETREF(self->tick, obj);
+            Py_CLEAR(self->batch);
+        }
+    } else {
+        Py_CLEAR(self->batch);
+    }
+    return PyLong_FromSsize_t(result);
+}
+
+static PyObject *
+Scanner_scan_value(Scanner *self, PyObject *value)
+{
+    Py_buffer view;
+    if (PyObject_GetBuffer(value, &view, PyBUF_SIMPLE) < 0) {
+        return NULL;
+    }
+    PyObject *obj = NULL;
+    Py_ssize_t result = scan_any(self, (const uint8_t *)view.buf, 0, view.len, &obj);
+    Py_ssize_t len = view.len;
+    PyBuffer_Release(&view);
+    if (result == -3) {
+        return NULL;
+    }
+    if (result < 0) {
+        Py_RETURN_NONE;
+    }
+    if (result != len) {
+        Py_DECREF(obj); /* bytes after the record: the general path explains them */
+        Py_RETURN_NONE;
+    }
+    return obj;
+}
+
+static PyObject *
+Scanner_new(PyTypeObject *type, PyObject *args, PyObject *kwds)
+{
+    if (PyTuple_GET_SIZE(args) != 0 || (kwds != NULL && PyDict_GET_SIZE(kwds) != 0)) {
+        PyErr_SetString(PyExc_TypeError, "WireScanner() takes no arguments");
+        return NULL;
+    }
+    Scanner *self = (Scanner *)type->tp_alloc(type, 0);
+    if (self == NULL) {
+        return NULL;
+    }
+    /* tp_alloc zero-fills: no tick, no batch, an empty cache. */
+    return (PyObject *)self;
+}
+
+static void
+Scanner_dealloc(Scanner *self)
+{
+    Py_CLEAR(self->tick);
+    Py_CLEAR(self->batch);
+    for (int i = 0; i < CACHE_SLOTS; i++) {
+        Py_CLEAR(self->slot_raw[i]);
+        Py_CLEAR(self->slot_text[i]);
+    }
+    Py_TYPE(self)->tp_free((PyObject *)self);
+}
+
+static PyMethodDef Scanner_methods[] = {
+    {"scan", (PyCFunction)(void (*)(void))Scanner_scan, METH_FASTCALL,
+     "scan(data, pos) -> int: decode the tick map at data[pos] into .tick; returns the position after it, "
+     "NOT_SIMPLE or INCOMPLETE."},
+    {"scan_record", (PyCFunction)(void (*)(void))Scanner_scan_record, METH_FASTCALL,
+     "scan_record(data, pos) -> int: like scan(), but also takes an array of simple ticks (a batched "
+     "record); then .batch holds the ticks and .tick is None."},
+    {"scan_value", (PyCFunction)Scanner_scan_value, METH_O,
+     "scan_value(value) -> Tick | list[Tick] | None: the record when the whole value is one simple record, "
+     "else None (decode it the general way)."},
+    {NULL, NULL, 0, NULL},
+};
+
+static PyMemberDef Scanner_members[] = {
+    {"tick", T_OBJECT, offsetof(Scanner, tick), READONLY, "the last scanned tick (None after a batch)"},
+    {"batch", T_OBJECT, offsetof(Scanner, batch), READONLY, "the last scanned batch of ticks, or None"},
+    {NULL, 0, 0, 0, NULL},
+};
+
+static PyTypeObject ScannerType = {
+    PyVarObject_HEAD_INIT(NULL, 0)
+    .tp_name = "barsmith.ingest._wirescan.WireScanner",
+    .tp_basicsize = sizeof(Scanner),
+    .tp_flags = Py_TPFLAGS_DEFAULT,
+    .tp_doc = "Scans one record at a time. After a successful scan, .tick (or .batch) holds it.",
+    .tp_new = Scanner_new,
+    .tp_dealloc = (destructor)Scanner_dealloc,
+    .tp_methods = Scanner_methods,
+    .tp_members = Scanner_members,
+};
+
+static struct PyModuleDef wirescan_module = {
+    PyModuleDef_HEAD_INIT,
+    .m_name = "barsmith.ingest._wirescan",
+    .m_doc = "The record scanner: msgpack bytes of the usual tick record -> Tick objects.",
+    .m_size = -1,
+};
+
+PyMODINIT_FUNC
+PyInit__wirescan(void)
+{
+    if (PyType_Ready(&ScannerType) < 0) {
+        return NULL;
+    }
+    PyObject *ticks = PyImport_ImportModule("barsmith.ingest.ticks");
+    if (ticks == NULL) {
+        return NULL;
+    }
+    tick_type = PyObject_GetAttrString(ticks, "Tick");
+    Py_DECREF(ticks);
+    if (tick_type == NULL) {
+        return NULL;
+    }
+    PyObject *module = PyModule_Create(&wirescan_module);
+    if (module == NULL) {
+        return NULL;
+    }
+    Py_INCREF(&ScannerType);
+    if (PyModule_AddObject(module, "WireScanner", (PyObject *)&ScannerType) < 0
+        || PyModule_AddIntConstant(module, "NOT_SIMPLE", NOT_SIMPLE) < 0
+        || PyModule_AddIntConstant(module, "INCOMPLETE", INCOMPLETE) < 0) {
+        Py_DECREF(module);
+        return NULL;
+    }
+    return module;
+}
