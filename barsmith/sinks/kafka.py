@@ -19,6 +19,7 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import msgpack
+from aiokafka.partitioner import murmur2
 
 from barsmith.bars.bar import Bar
 from barsmith.errors import SinkError
@@ -28,9 +29,12 @@ from barsmith.sources.kafka import security_kwargs
 log = logging.getLogger("barsmith.bus")
 
 
+_packer = msgpack.Packer(use_bin_type=True, autoreset=True)
+
+
 def encode_bar(bar: Bar) -> bytes:
     """The bus value of a bar: a msgpack map of the bar columns."""
-    return bytes(msgpack.packb(bar.as_dict(), use_bin_type=True))
+    return bytes(_packer.pack(bar.as_dict()))
 
 
 def decode_bar(value: bytes) -> dict[str, Any]:
@@ -61,6 +65,7 @@ class KafkaBarSink:
         self.producer_for = producer_for
         self._stream_inflight: dict[str, set[asyncio.Future[Any]]] = {}
         self._stream_failures: dict[str, BaseException] = {}
+        self._key_hashes: dict[bytes, int] = {}
 
     async def start(self) -> None:
         if self.producer_for is not None:
@@ -94,23 +99,56 @@ class KafkaBarSink:
                 await self.start()
             producer = self._producer
         closed_at = time.monotonic()
-        send = producer.send
         try:
+            # One record batch per output partition instead of one send per bar: the
+            # client's per-message path (a coroutine, a future and a partitioner call
+            # each) cost more than building the bars. Partitions are the ones the
+            # default partitioner picks for the key, so keyed consumers see no change.
+            partitions = sorted(await producer.partitions_for(self.topic))
+            batches: dict[int, tuple[Any, list[Bar]]] = {}
             for bar in bars:
-                future = await send(
-                    self.topic,
-                    value=encode_bar(bar),
-                    key=bar.symbol.encode("utf-8"),
-                    headers=[("spec", bar.spec.encode("utf-8"))],
-                )
-                self._inflight.add(future)
-                if self.producer_for is not None:
-                    self._stream_inflight.setdefault(stream, set()).add(future)
-                future.add_done_callback(functools.partial(self._delivered, stream, bar, closed_at))
+                key = bar.symbol.encode("utf-8")
+                partition = partitions[self._key_hash(key) % len(partitions)]
+                value = encode_bar(bar)
+                headers = [("spec", bar.spec.encode("utf-8"))]
+                entry = batches.get(partition)
+                if entry is None:
+                    entry = batches[partition] = (producer.create_batch(), [])
+                if entry[0].append(key=key, value=value, timestamp=None, headers=headers) is None:
+                    await self._send(stream, producer, partition, entry, closed_at)  # full
+                    entry = batches[partition] = (producer.create_batch(), [])
+                    if entry[0].append(key=key, value=value, timestamp=None, headers=headers) is None:
+                        raise SinkError(f"a bar of {bar.symbol} does not fit in a record batch")
+                entry[1].append(bar)
+            for partition, entry in batches.items():
+                await self._send(stream, producer, partition, entry, closed_at)
+        except SinkError:
+            raise
         except Exception as exc:
             raise SinkError(f"cannot publish bars to {self.topic}: {exc}") from exc
 
-    def _delivered(self, stream: str, bar: Bar, closed_at: float, future: asyncio.Future[Any]) -> None:
+    def _key_hash(self, key: bytes) -> int:
+        """The default partitioner's hash of ``key`` (murmur2, sign bit cleared), cached:
+        keys are symbols, a small set."""
+        cached = self._key_hashes.get(key)
+        if cached is None:
+            if len(self._key_hashes) >= 100_000:
+                self._key_hashes.clear()
+            cached = self._key_hashes[key] = murmur2(key) & 0x7FFFFFFF
+        return cached
+
+    async def _send(
+        self, stream: str, producer: Any, partition: int, entry: tuple[Any, list[Bar]], closed_at: float
+    ) -> None:
+        batch, bars = entry
+        batch.close()
+        future = await producer.send_batch(batch, self.topic, partition=partition)
+        self._inflight.add(future)
+        if self.producer_for is not None:
+            self._stream_inflight.setdefault(stream, set()).add(future)
+        future.add_done_callback(functools.partial(self._delivered, stream, bars, closed_at))
+
+    def _delivered(self, stream: str, bars: list[Bar], closed_at: float, future: asyncio.Future[Any]) -> None:
         self._inflight.discard(future)
         if self.producer_for is not None:
             self._stream_inflight.get(stream, set()).discard(future)
@@ -122,9 +160,11 @@ class KafkaBarSink:
             else:
                 self._error = self._error or str(failure)
             return
-        self.published += 1
+        self.published += len(bars)
         if self.on_published is not None:
-            self.on_published(bar, time.monotonic() - closed_at)
+            delay_s = time.monotonic() - closed_at
+            for bar in bars:
+                self.on_published(bar, delay_s)
 
     def _raise_delivery_error(self) -> None:
         if self._error is not None:

@@ -77,13 +77,22 @@ async def read_records(bootstrap: str, topic: str) -> list[Any]:
     return out
 
 
+OUTPUT_PARTITIONS = 8  # the service creates a missing output topic with kafka.output_partitions (8)
+
+
 async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
     """The bar topic, read_committed, as a frame with the Parquet columns and types."""
+    from aiokafka.partitioner import DefaultPartitioner
+
     rows: list[dict[str, Any]] = []
+    partitions = list(range(OUTPUT_PARTITIONS))
     for record in await read_records(bootstrap, topic):
         bar = msgpack.unpackb(record.value)
         assert list(bar) == list(BAR_COLUMNS)  # exactly the Parquet columns
         assert record.key.decode("utf-8") == bar["symbol"]
+        # Keyed records go where Kafka's default partitioner (murmur2 of the key, as
+        # aiokafka implements it) puts them: consumers keyed by symbol rely on it.
+        assert record.partition == DefaultPartitioner()(record.key, partitions, partitions)
         assert dict(record.headers)["spec"].decode("utf-8") == bar["spec"]
         rows.append(bar)
     frame = pd.DataFrame(rows, columns=list(BAR_COLUMNS))
