@@ -20,6 +20,7 @@
 
 #define NOT_SIMPLE (-1)
 #define INCOMPLETE (-2)
+#define PY_FAILED (-3) /* internal: a Python exception is set */
 
 #define MAX_SYMBOL_CHARS 64
 
@@ -241,7 +242,7 @@ float_or_none(int has, double value)
 }
 
 /* Decode one tick map at data[pos] into *tick (a new reference). Returns the position
- * after it, NOT_SIMPLE, INCOMPLETE, or -3 with a Python error set. */
+ * after it, NOT_SIMPLE, INCOMPLETE, or PY_FAILED. */
 static Py_ssize_t
 scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **tick)
 {
@@ -367,7 +368,7 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
     }
     PyObject *sym = symbol_of(self, sym_raw, sym_len);
     if (sym == NULL) {
-        return PyErr_Occurred() ? -3 : NOT_SIMPLE;
+        return PyErr_Occurred() ? PY_FAILED : NOT_SIMPLE;
     }
     PyObject *args[11];
     args[0] = sym;
@@ -396,7 +397,7 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
         Py_XDECREF(args[i]);
     }
     if (result == NULL) {
-        return -3;
+        return PY_FAILED;
     }
     *tick = result;
     return pos;
@@ -418,27 +419,6 @@ parse_args(PyObject *const *args, Py_ssize_t nargs, const char *name, Py_buffer 
         return -1;
     }
     return PyObject_GetBuffer(args[0], view, PyBUF_SIMPLE);
-}
-
-static PyObject *
-Scanner_scan(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
-{
-    Py_buffer view;
-    Py_ssize_t pos;
-    if (parse_args(args, nargs, "scan", &view, &pos) < 0) {
-        return NULL;
-    }
-    PyObject *tick = NULL;
-    Py_ssize_t result = scan_tick(self, (const uint8_t *)view.buf, pos, view.len, &tick);
-    PyBuffer_Release(&view);
-    if (result == -3) {
-        return NULL;
-    }
-    Py_CLEAR(self->batch);
-    if (result >= 0) {
-        Py_XSETREF(self->tick, tick);
-    }
-    return PyLong_FromSsize_t(result);
 }
 
 /* A tick map or an array of them at data[pos]: *out is a Tick or a list of ticks. */
@@ -465,7 +445,7 @@ scan_any(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyO
     }
     PyObject *ticks = PyList_New(count);
     if (ticks == NULL) {
-        return -3;
+        return PY_FAILED;
     }
     for (Py_ssize_t i = 0; i < count; i++) {
         PyObject *tick = NULL;
@@ -492,7 +472,7 @@ Scanner_scan_record(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
     PyObject *obj = NULL;
     Py_ssize_t result = scan_any(self, (const uint8_t *)view.buf, pos, view.len, &obj);
     PyBuffer_Release(&view);
-    if (result == -3) {
+    if (result == PY_FAILED) {
         return NULL;
     }
     if (result >= 0) {
@@ -520,7 +500,7 @@ Scanner_scan_value(Scanner *self, PyObject *value)
     Py_ssize_t result = scan_any(self, (const uint8_t *)view.buf, 0, view.len, &obj);
     Py_ssize_t len = view.len;
     PyBuffer_Release(&view);
-    if (result == -3) {
+    if (result == PY_FAILED) {
         return NULL;
     }
     if (result < 0) {
@@ -561,12 +541,9 @@ Scanner_dealloc(Scanner *self)
 }
 
 static PyMethodDef Scanner_methods[] = {
-    {"scan", (PyCFunction)(void (*)(void))Scanner_scan, METH_FASTCALL,
-     "scan(data, pos) -> int: decode the tick map at data[pos] into .tick; returns the position after it, "
-     "NOT_SIMPLE or INCOMPLETE."},
     {"scan_record", (PyCFunction)(void (*)(void))Scanner_scan_record, METH_FASTCALL,
-     "scan_record(data, pos) -> int: like scan(), but also takes an array of simple ticks (a batched "
-     "record); then .batch holds the ticks and .tick is None."},
+     "scan_record(data, pos) -> int: decode the record at data[pos], a tick map (into .tick) or an array of "
+     "simple ticks (into .batch; .tick is None); returns the position after it, NOT_SIMPLE or INCOMPLETE."},
     {"scan_value", (PyCFunction)Scanner_scan_value, METH_O,
      "scan_value(value) -> Tick | list[Tick] | None: the record when the whole value is one simple record, "
      "else None (decode it the general way)."},

@@ -314,7 +314,7 @@ class ServiceRunner(Runner):
         engine = self.engines.pop(stream, None)
         baseline = self._baselines.pop(stream, None)
         if engine is not None:
-            self._retired.add(engine.stats.since(baseline) if baseline is not None else engine.stats)
+            self._retired.add(_own_counts(engine, baseline))
         return engine is not None
 
     def set_baseline(self, stream: str, stats: EngineStats) -> None:
@@ -332,7 +332,11 @@ class ServiceRunner(Runner):
     def total_stats(self) -> EngineStats:
         total = EngineStats()
         for stream, engine in self.engines.items():
-            baseline = self._baselines.get(stream)
-            total.add(engine.stats.since(baseline) if baseline is not None else engine.stats)
+            total.add(_own_counts(engine, self._baselines.get(stream)))
         total.add(self._retired)
         return total
+
+
+def _own_counts(engine: Engine, baseline: EngineStats | None) -> EngineStats:
+    """What this process counted on ``engine``: without the counters a restore brought."""
+    return engine.stats.since(baseline) if baseline is not None else engine.stats

@@ -240,18 +240,19 @@ class ExactlyOnce:
             return
         for stream in ready:
             owner = self.owners[stream]
-            await self._adopt(owner, stored.get(stream))
+            group_offset = await self._adopt(owner, stored.get(stream))
             try:
-                await self._restore(owner, "assignment")
+                await self._restore(owner, "assignment", group_offset)
             except Exception as exc:
                 if not is_bus_failure(exc):
                     raise
                 log.warning("%s: cannot restore yet (%s); retrying", stream, exc)
 
-    async def _adopt(self, owner: PartitionOwner, data: bytes | None) -> None:
-        """Take ``data`` (the partition's stored checkpoint, if any) as the owner's last."""
+    async def _adopt(self, owner: PartitionOwner, data: bytes | None) -> int | None:
+        """Take ``data`` (the partition's stored checkpoint, if any) as the owner's last;
+        returns the consumer group's committed offset of the partition."""
+        committed = await self.runner.kafka_source.committed_offset(owner.stream)
         if data is None:
-            committed = await self.runner.kafka_source.committed_offset(owner.stream)
             if committed is not None:
                 log.warning(
                     "no checkpoint for %s, but the group committed offset %d (an at-least-once run?): "
@@ -262,6 +263,7 @@ class ExactlyOnce:
             owner.offset = committed
         owner.checkpoint = data
         owner.loaded = True
+        return committed
 
     async def revoke(self, streams: Sequence[str]) -> None:
         """Let go of ``streams``: checkpoint and commit what they did, then forget them."""
@@ -388,18 +390,20 @@ class ExactlyOnce:
         try:
             if owner.producer is None:
                 owner.producer = await self._start_producer(owner)
-            reason = "rewind"
+            reason, group_offset = "rewind", None
             if not owner.loaded:
-                await self._adopt(owner, (await self.state.load([owner.stream])).get(owner.stream))
+                group_offset = await self._adopt(owner, (await self.state.load([owner.stream])).get(owner.stream))
                 reason = "assignment"
-            await self._restore(owner, reason)
+            await self._restore(owner, reason, group_offset)
         except Exception as exc:
             if not is_bus_failure(exc):
                 raise
             log.warning("%s: cannot recover yet (%s); retrying", owner.stream, exc)
 
-    async def _restore(self, owner: PartitionOwner, reason: str) -> None:
-        """Install the owner's last committed checkpoint (or empty state) and seek to it."""
+    async def _restore(self, owner: PartitionOwner, reason: str, group_offset: int | None = None) -> None:
+        """Install the owner's last committed checkpoint (or empty state) and seek to it.
+        ``group_offset``: on assignment, the group's committed offset (for the count of
+        records consumed again)."""
         runner = self.runner
         source = runner.kafka_source
         stream = owner.stream
@@ -427,11 +431,8 @@ class ExactlyOnce:
         await owner.producer.begin_transaction()
         owner.healthy = True
         self.metrics.restores.labels(reason=reason).inc()
-        if reason == "rewind":
-            rewound = max(0, (position or 0) - (owner.offset or 0))
-        else:
-            committed = await source.committed_offset(stream)
-            rewound = max(0, (committed or 0) - (owner.offset or 0))
+        done = position if reason == "rewind" else group_offset
+        rewound = max(0, (done or 0) - (owner.offset or 0))
         self.metrics.offsets_rewound.inc(rewound)
         # No end-offset lookup for the log line: at the end of a partition it queues
         # behind the consumer's long-poll fetch (up to fetch_max_wait_ms, 0.5 s) on the

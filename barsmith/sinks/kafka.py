@@ -19,12 +19,12 @@ from collections.abc import Callable, Sequence
 from typing import Any
 
 import msgpack
-from aiokafka.partitioner import murmur2
 
 from barsmith.bars.bar import Bar
 from barsmith.errors import SinkError
 from barsmith.settings import KafkaSettings
 from barsmith.sources.kafka import security_kwargs
+from barsmith.sources.partitioning import partition_for
 
 log = logging.getLogger("barsmith.bus")
 
@@ -65,7 +65,6 @@ class KafkaBarSink:
         self.producer_for = producer_for
         self._stream_inflight: dict[str, set[asyncio.Future[Any]]] = {}
         self._stream_failures: dict[str, BaseException] = {}
-        self._key_hashes: dict[bytes, int] = {}
 
     async def start(self) -> None:
         if self.producer_for is not None:
@@ -103,19 +102,19 @@ class KafkaBarSink:
             # One record batch per output partition instead of one send per bar: the
             # client's per-message path (a coroutine, a future and a partitioner call
             # each) cost more than building the bars. Partitions are the ones the
-            # default partitioner picks for the key, so keyed consumers see no change.
+            # default partitioner picks for the key (partition_for, as publish uses),
+            # so keyed consumers see no change.
             partitions = sorted(await producer.partitions_for(self.topic))
             batches: dict[int, tuple[Any, list[Bar]]] = {}
             for bar in bars:
                 key = bar.symbol.encode("utf-8")
-                partition = partitions[self._key_hash(key) % len(partitions)]
+                partition = partitions[partition_for(bar.symbol, len(partitions))]
                 value = encode_bar(bar)
                 headers = [("spec", bar.spec.encode("utf-8"))]
                 entry = batches.get(partition)
-                if entry is None:
-                    entry = batches[partition] = (producer.create_batch(), [])
-                if entry[0].append(key=key, value=value, timestamp=None, headers=headers) is None:
-                    await self._send(stream, producer, partition, entry, closed_at)  # full
+                if entry is None or entry[0].append(key=key, value=value, timestamp=None, headers=headers) is None:
+                    if entry is not None:
+                        await self._send(stream, producer, partition, entry, closed_at)  # full
                     entry = batches[partition] = (producer.create_batch(), [])
                     if entry[0].append(key=key, value=value, timestamp=None, headers=headers) is None:
                         raise SinkError(f"a bar of {bar.symbol} does not fit in a record batch")
@@ -126,16 +125,6 @@ class KafkaBarSink:
             raise
         except Exception as exc:
             raise SinkError(f"cannot publish bars to {self.topic}: {exc}") from exc
-
-    def _key_hash(self, key: bytes) -> int:
-        """The default partitioner's hash of ``key`` (murmur2, sign bit cleared), cached:
-        keys are symbols, a small set."""
-        cached = self._key_hashes.get(key)
-        if cached is None:
-            if len(self._key_hashes) >= 100_000:
-                self._key_hashes.clear()
-            cached = self._key_hashes[key] = murmur2(key) & 0x7FFFFFFF
-        return cached
 
     async def _send(
         self, stream: str, producer: Any, partition: int, entry: tuple[Any, list[Bar]], closed_at: float

@@ -77,12 +77,17 @@ def prepare_output_dir(path: Path, replace: bool) -> None:
         old.unlink()
 
 
+def _temp_path(final_path: Path) -> Path:
+    """Where a file is written before it is complete: hidden, beside its final name."""
+    return final_path.with_name(f".{final_path.name}.tmp")
+
+
 class _RollingFile:
     """One Parquet file being written under a temporary name."""
 
     def __init__(self, final_path: Path, schema: pa.Schema, compression: str) -> None:
         self.final_path = final_path
-        self.tmp_path = final_path.with_name(f".{final_path.name}.tmp")
+        self.tmp_path = _temp_path(final_path)
         self.writer = pq.ParquetWriter(self.tmp_path, schema, compression=compression)
         self.rows = 0
         self.opened_at = time.monotonic()
@@ -380,7 +385,7 @@ class ParquetPartSink:
     def _publish_parts(self, names: Sequence[str]) -> None:
         for name in names:
             final = self.directory / name
-            temp = final.with_name(f".{name}.tmp")
+            temp = _temp_path(final)
             try:
                 if temp.exists():
                     os.replace(temp, final)

@@ -70,7 +70,7 @@ def test_fast_path_agrees_with_the_validator(rec: dict[str, Any], single_float: 
     except OverflowError:
         data = msgpack.packb(rec)
     scan = SHARED  # one scanner for every example: its symbol cache is exercised too
-    end = scan.scan(data, 0)
+    end = scan.scan_record(data, 0)
     try:
         expected = decode_tick(msgpack.unpackb(data, strict_map_key=False))
     except MalformedTickError:
@@ -105,9 +105,9 @@ Tick_fields = (
 def test_cut_records_are_incomplete_not_wrong() -> None:
     data = msgpack.packb(tick(bid_px=1.5, bid_qty=2.0, trade_px=1.5, trade_qty=1.0))
     scan = scanner()
-    assert scan.scan(data, 0) == len(data)
+    assert scan.scan_record(data, 0) == len(data)
     for cut in range(1, len(data)):
-        assert scan.scan(data[:cut], 0) == INCOMPLETE
+        assert scan.scan_record(data[:cut], 0) == INCOMPLETE
         assert scan.scan_value(data[:cut]) is None
     batch = msgpack.packb([msgpack.unpackb(data)] * 3)
     assert scan.scan_record(batch, 0) == len(batch)
@@ -122,7 +122,7 @@ def test_trailing_bytes_and_empty_batches_take_the_general_path() -> None:
     assert scan.scan_value(msgpack.packb([])) is None
     assert scan.scan_record(msgpack.packb([]), 0) == NOT_SIMPLE
     # A valid record after some bytes: the position is honoured.
-    assert scan.scan(b"\x00" + data, 1) == len(data) + 1
+    assert scan.scan_record(b"\x00" + data, 1) == len(data) + 1
 
 
 def test_constants_agree_with_the_extension() -> None:
@@ -140,10 +140,10 @@ def test_doubles_decode_bit_for_bit() -> None:
     for value in edges:
         rec = tick(trade_px=1.0, trade_qty=1.0, bid_qty=value)
         data = msgpack.packb(rec)
-        assert scan.scan(data, 0) == len(data), value
+        assert scan.scan_record(data, 0) == len(data), value
         assert_same_tick(scan.tick, decode_tick(msgpack.unpackb(data)))
     for value in (-1.5, math.inf, -math.inf, math.nan):  # the validator rejects these
-        assert scan.scan(msgpack.packb(tick(trade_px=1.0, trade_qty=1.0, bid_qty=value)), 0) == NOT_SIMPLE
+        assert scan.scan_record(msgpack.packb(tick(trade_px=1.0, trade_qty=1.0, bid_qty=value)), 0) == NOT_SIMPLE
 
 
 def test_symbol_cache_gives_each_symbol_its_own_text() -> None:
@@ -153,7 +153,7 @@ def test_symbol_cache_gives_each_symbol_its_own_text() -> None:
     for _ in range(2):
         for name in names:
             data = msgpack.packb(tick(sym=name))
-            assert scan.scan(data, 0) == len(data)
+            assert scan.scan_record(data, 0) == len(data)
             assert scan.tick.sym == name
     too_long = msgpack.packb(tick(sym="Ω" * 65))
-    assert scan.scan(too_long, 0) == NOT_SIMPLE
+    assert scan.scan_record(too_long, 0) == NOT_SIMPLE
