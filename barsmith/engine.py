@@ -7,15 +7,21 @@ with :meth:`Engine.process` and drains :meth:`Engine.take_bars` and
 
 Per message, in this order (the order matters and tests pin it):
 
-1. validate (malformed → reject); the book's sequence rules (duplicate → dropped);
-   the event-time clamp;
+1. validate (malformed → reject); the book judges the message by the sequence rules
+   (duplicate → dropped) and clamps its event time -- without changing the book yet;
 2. advance the watermark (largest accepted ``ts``) and close the time bars whose end
    is at or before ``watermark - lateness``;
-3. the message's trade, into the time bar of its interval and the event bars (a
-   message whose time interval is already closed is *late* for that time bar:
-   recorded as a reject with reason ``late``, still used for books and event bars);
-4. the message's quote changes (a trade happens before its message's quote changes);
+3. seal the symbol's time bars that this message moves past; then the message's
+   trade, into the time bar of its interval and the event bars (a message whose time
+   interval is already closed is *late* for that time bar: recorded as a reject with
+   reason ``late``, still used for books and event bars);
+4. the message's effect on the book: its status change (gap, snapshot) and quote
+   changes (a trade happens before its message's quote changes);
 5. event bars that reached their threshold close with the book as it now stands.
+
+Steps 2 and 3 run before step 4 on purpose: a bar closed there ends before this
+message, so it takes the book as it stood after the bar's own last message. A gap
+or a snapshot opening the next interval belongs to the next bar.
 """
 
 from __future__ import annotations
@@ -169,13 +175,15 @@ class Engine:
                 self._sweep(limit_ns)
 
     def finish(self) -> None:
-        """Input ended: emit every open bar, marked incomplete."""
+        """Input ended: emit every open bar, marked incomplete. Their spread windows run
+        up to the last event time seen (the watermark)."""
         self._sweep(_NO_CLOSE - 1, complete=False)
         for state in self._symbols.values():
+            until = max(self._watermark, state.spread_since)
             for index, bar in enumerate(state.bars):
                 if bar is not None:
-                    bar.integrate(state.spread, state.spread_since, bar.end)
-                    self._emit(bar, state.book.snapshot_state(), complete=False, event_bar=True)
+                    bar.integrate(state.spread, state.spread_since, until)
+                    self._emit(bar, state.book.snapshot_state(), False, until == bar.start)
                     state.bars[index] = None
 
     def take_bars(self) -> list[Bar]:
@@ -338,7 +346,7 @@ class Engine:
             if bar is not None and t >= bar.end:
                 # The symbol moved past this bar: freeze it; it is emitted when due.
                 bar.integrate(state.spread, state.spread_since, bar.end)
-                bar.closed_book = book.snapshot_state()  # before this message's quotes
+                bar.closed_book = book.snapshot_state()  # the book before this message
                 bars[index] = None
                 bar = None
             if bar is None:
@@ -391,7 +399,7 @@ class Engine:
                         closing = []
                     closing.append(index)
 
-        book.apply_quotes(tick)
+        book.apply(tick, outcome)
         spread = book.spread()
         if spread != state.spread:
             old = state.spread
@@ -408,7 +416,7 @@ class Engine:
                 assert bar is not None
                 bar.integrate(state.spread, state.spread_since, t)
                 bars[index] = None
-                self._emit(bar, book_state, complete=True, event_bar=True)
+                self._emit(bar, book_state, True, t == bar.start)
 
     # -- time bar closing ------------------------------------------------------------
 
@@ -432,7 +440,7 @@ class Engine:
             else:
                 assert bar.closed_book is not None
                 book_state = bar.closed_book
-            self._emit(bar, book_state, complete, event_bar=False)
+            self._emit(bar, book_state, complete, False)
         self._next_due = due[0][0] if due else _NO_CLOSE
 
     def _emit(
@@ -440,10 +448,10 @@ class Engine:
         bar: OpenBar,
         book_state: tuple[float | None, float | None, float | None],
         complete: bool,
-        event_bar: bool,
+        empty_window: bool,
     ) -> None:
         self.stats.bars[bar.spec_text] += 1
-        self._bars.append(bar.finish(book_state, complete, event_bar))
+        self._bars.append(bar.finish(book_state, complete, empty_window))
 
 
 _BAR_FIELDS: Final = (

@@ -5,7 +5,8 @@ bar's window, weighted by how long it held. Undefined periods (book resyncing, a
 side empty) and zero-length states are left out. A time bar's window is its
 interval [start, end), including the state carried in from before ``start``. An
 event bar's window is [first trade, closing trade); when that window has zero
-length, the statistics are the spread in effect at its first trade.
+length, the statistics are the spread in effect at its first trade. A bar emitted
+incomplete because input ended integrates up to the last event time seen.
 """
 
 from __future__ import annotations
@@ -150,16 +151,18 @@ class OpenBar:
         self.spread_time += held
 
     def finish(
-        self, book_state: tuple[float | None, float | None, float | None], complete: bool, event_bar: bool
+        self, book_state: tuple[float | None, float | None, float | None], complete: bool, empty_window: bool
     ) -> Bar:
-        """The output record, with the book state after the bar's last message."""
+        """The output record, with the book state after the bar's last message.
+        ``empty_window``: an event bar whose spread window has zero length; its spread
+        statistics are then the spread in effect at its first trade."""
         bid, ask, spread_close = book_state
         traded = self.trades > 0
         if self.spread_time > 0:
             mean: float | None = self.spread_area / self.spread_time
             low: float | None = self.spread_min
             high: float | None = self.spread_max
-        elif event_bar:
+        elif empty_window:
             mean = low = high = self.open_spread
         else:
             mean = low = high = None

@@ -42,10 +42,12 @@ class Outcome(enum.Enum):
 
 _LIVE: Final = BookStatus.LIVE
 _RESYNCING: Final = BookStatus.RESYNCING
+_GAP: Final = Outcome.GAP
 
 
 class SymbolBook:
-    """Top of book for one symbol; :meth:`apply` runs the sequence and quote rules."""
+    """Top of book for one symbol: :meth:`admit` judges a message by the sequence rules,
+    :meth:`apply` makes its effect on the book."""
 
     __slots__ = (
         "ask_px",
@@ -81,24 +83,21 @@ class SymbolBook:
         return None
 
     def admit(self, tick: Tick) -> Outcome:
-        """Sequence check and event-time clamp; updates ``last_seq``/``last_ts`` and the
-        status, and may raise ``tick.ts``. Quotes are applied separately by
-        :meth:`apply_quotes`, because a message's trade happens before its quote changes."""
+        """Judge a message: the sequence rules and the event-time clamp. Updates only
+        ``last_seq``/``last_ts`` (and may raise ``tick.ts``); the book's status and
+        quotes are untouched until :meth:`apply`.
+
+        The split matters: between the two, the engine closes the bars that end before
+        this message, and those must take the book as it stood after *their* last
+        message -- a gap or a snapshot that opens the next interval is not theirs."""
         seq = tick.seq
         last = self.last_seq
-        if tick.is_snapshot:
+        if tick.is_snapshot or last < 0 or seq == last + 1:
             outcome = Outcome.ACCEPTED
-            self.status = _LIVE
-        elif last < 0:
-            outcome = Outcome.ACCEPTED
-            self.status = _RESYNCING
         elif seq <= last:
             return Outcome.DUPLICATE
-        elif seq == last + 1:
-            outcome = Outcome.ACCEPTED
         else:
             outcome = Outcome.GAP
-            self.status = _RESYNCING
         self.last_seq = seq
         if tick.ts < self.last_ts:
             tick.ts = self.last_ts
@@ -107,13 +106,19 @@ class SymbolBook:
             self.last_ts = tick.ts
         return outcome
 
-    def apply_quotes(self, tick: Tick) -> None:
-        """Apply an admitted message's quote fields under the book rules."""
+    def apply(self, tick: Tick, outcome: Outcome) -> None:
+        """The admitted message's effect on the book: the status transition (a snapshot
+        makes it live, a gap resyncing) and its quote fields under the book rules. A
+        message's trade happens before this (trade before quotes)."""
         if tick.is_snapshot:
+            self.status = _LIVE
             self.bid_px = tick.bid_px
             self.bid_qty = tick.bid_qty
             self.ask_px = tick.ask_px
             self.ask_qty = tick.ask_qty
+            return
+        if outcome is _GAP:
+            self.status = _RESYNCING
             return
         if self.status is not _LIVE:
             return  # resyncing: the quote state is unknown until the next snapshot

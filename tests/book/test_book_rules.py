@@ -12,7 +12,7 @@ def apply(book: SymbolBook, rec: dict[str, object]) -> Outcome:
     t = decode_tick(rec)
     outcome = book.admit(t)
     if outcome is not Outcome.DUPLICATE:
-        book.apply_quotes(t)
+        book.apply(t, outcome)
     return outcome
 
 
