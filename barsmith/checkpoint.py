@@ -23,10 +23,12 @@ import msgpack
 from barsmith.bars.spec import BarSpec
 from barsmith.engine import Engine
 from barsmith.errors import CheckpointError
+from barsmith.ingest.eventtime import StreamLimits
 
 FORMAT_NAME: Final = "barsmith-engine-checkpoint"
-FORMAT_VERSION: Final = 1
-READABLE_VERSIONS: Final = frozenset({1})
+# 2: the event-time guard's state (held ticks); 1 is read as "nothing held".
+FORMAT_VERSION: Final = 2
+READABLE_VERSIONS: Final = frozenset({1, 2})
 
 __all__ = ["FORMAT_VERSION", "CheckpointError", "decode_checkpoint", "encode_checkpoint"]
 
@@ -44,7 +46,9 @@ def encode_checkpoint(engine: Engine, meta: dict[str, Any] | None = None) -> byt
     return bytes(msgpack.packb(payload, use_bin_type=True))
 
 
-def decode_checkpoint(data: bytes, specs: Sequence[BarSpec], lateness_ns: int) -> tuple[Engine, dict[str, Any]]:
+def decode_checkpoint(
+    data: bytes, specs: Sequence[BarSpec], lateness_ns: int, limits: StreamLimits | None = None
+) -> tuple[Engine, dict[str, Any]]:
     """Rebuild the engine stored in ``data``; raises :class:`CheckpointError` when the
     bytes are not a checkpoint, come from an unknown format version, or were written
     with other bar specs or lateness."""
@@ -76,7 +80,7 @@ def decode_checkpoint(data: bytes, specs: Sequence[BarSpec], lateness_ns: int) -
             "new consumer group and state topic to rebuild from the input"
         )
     try:
-        engine = Engine.from_state(specs, lateness_ns, payload["engine"])
+        engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
         raise CheckpointError(f"checkpoint is damaged: {type(exc).__name__}: {exc}") from exc
     meta: dict[str, Any] = payload.get("meta", {})

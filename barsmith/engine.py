@@ -7,8 +7,13 @@ with :meth:`Engine.process` and drains :meth:`Engine.take_bars` and
 
 Per message, in this order (the order matters and tests pin it):
 
-1. validate (malformed → reject); the book judges the message by the sequence rules
-   (duplicate → dropped) and clamps its event time -- without changing the book yet;
+0. validate (malformed → reject); the event-time guards: a ``ts`` too far ahead of the
+   wall clock (the service) is rejected as ``future``; one too far ahead of the
+   stream's own progress is *held* until the jump is confirmed or contradicted (see
+   :mod:`barsmith.ingest.eventtime`) -- before it touches any book or the watermark;
+1. the book judges the message by the sequence rules (duplicate → dropped; too far
+   behind its symbol's time → ``backdated``) and clamps its event time -- without
+   changing the book yet;
 2. advance the watermark (largest accepted ``ts``) and close the time bars whose end
    is at or before ``watermark - lateness``;
 3. seal the symbol's time bars that this message moves past; then the message's
@@ -36,8 +41,10 @@ from barsmith.bars.bar import Bar, OpenBar
 from barsmith.bars.spec import BarKind, BarSpec
 from barsmith.book.book import BookStatus, Outcome, SymbolBook
 from barsmith.errors import StateError
+from barsmith.ingest.eventtime import UNCONFIRMED, ClockGuard, HeldTick, StreamLimits
 from barsmith.ingest.rejects import Reject, pack_record
 from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
+from barsmith.units import format_duration_ns
 
 # Volume and notional thresholds are compared with this relative tolerance, so that a
 # sum of decimal quantities (0.1 + 0.2 ...) that equals the threshold on paper closes
@@ -46,6 +53,7 @@ THRESHOLD_RTOL: Final = 1e-9
 
 _DUPLICATE: Final = Outcome.DUPLICATE
 _GAP: Final = Outcome.GAP
+_BACKDATED: Final = Outcome.BACKDATED
 _NO_CLOSE: Final = 2**63  # "no time bar is due" (above any int64 timestamp)
 
 
@@ -107,12 +115,23 @@ class _SymbolState:
 class Engine:
     """Builds bars for one ordered stream of tick records."""
 
-    def __init__(self, specs: Sequence[BarSpec], lateness_ns: int) -> None:
+    def __init__(self, specs: Sequence[BarSpec], lateness_ns: int, limits: StreamLimits | None = None) -> None:
         if not specs:
             raise ValueError("an engine needs at least one bar spec")
         self.specs: tuple[BarSpec, ...] = tuple(specs)
         self.lateness_ns = lateness_ns
+        self.limits = limits if limits is not None else StreamLimits()
         self.stats = EngineStats()
+        # Event-time guards: ticks above the horizon are held (the stream's time is
+        # confirmed up to the watermark, and ticks may run max_jump_ns ahead of it);
+        # wall_limit_ns is set by the live service (wall clock + its limit).
+        self._guard = ClockGuard(self.limits)
+        self._horizon = UNCONFIRMED
+        self._max_jump_ns = self.limits.max_jump_ns
+        self._max_behind_ns = self.limits.max_behind_ns
+        self._max_symbols = self.limits.max_symbols
+        self.wall_limit_ns = _NO_CLOSE  # later ticks are rejected as future
+        self._wall_floor_ns = _NO_CLOSE  # ticks from here to wall_limit_ns are never held
         self._time_specs = [(i, s.interval_ns, s.text) for i, s in enumerate(self.specs) if s.is_time]
         self._event_specs = [
             (i, s.kind, s.threshold * (1.0 - THRESHOLD_RTOL), s.text) for i, s in enumerate(self.specs) if not s.is_time
@@ -175,8 +194,11 @@ class Engine:
                 self._sweep(limit_ns)
 
     def finish(self) -> None:
-        """Input ended: emit every open bar, marked incomplete. Their spread windows run
-        up to the last event time seen (the watermark)."""
+        """Input ended: decide the held ticks, then emit every open bar, marked
+        incomplete. Their spread windows run up to the last event time seen (the
+        watermark)."""
+        release, rejected = self._guard.settle_all()
+        self._use_held(release, rejected)
         self._sweep(_NO_CLOSE - 1, complete=False)
         for state in self._symbols.values():
             until = max(self._watermark, state.spread_since)
@@ -185,6 +207,15 @@ class Engine:
                     bar.integrate(state.spread, state.spread_since, until)
                     self._emit(bar, state.book.snapshot_state(), False, until == bar.start)
                     state.bars[index] = None
+
+    def set_wall_clock(self, now_ns: int) -> None:
+        """The live service's wall clock (replay never calls this). A tick more than
+        ``limits.max_ahead_of_wall_ns`` past it is rejected as ``future``; one within
+        ``limits.max_jump_ns`` of it needs no confirmation from the rest of the stream
+        (the wall clock confirms it)."""
+        ahead = self.limits.max_ahead_of_wall_ns
+        self.wall_limit_ns = now_ns + ahead if ahead is not None else _NO_CLOSE
+        self._wall_floor_ns = now_ns - self._max_jump_ns
 
     def take_bars(self) -> list[Bar]:
         """Finished bars since the last call, in the order they closed."""
@@ -242,6 +273,8 @@ class Engine:
         stats = self.stats
         return {
             "watermark": self._watermark,
+            "horizon": self._horizon,
+            "guard": self._guard.to_state(),
             "closed_through": self._closed_through,
             "order": self._order,
             "bars": bars,
@@ -260,9 +293,11 @@ class Engine:
         }
 
     @classmethod
-    def from_state(cls, specs: Sequence[BarSpec], lateness_ns: int, data: dict[str, Any]) -> Engine:
+    def from_state(
+        cls, specs: Sequence[BarSpec], lateness_ns: int, data: dict[str, Any], limits: StreamLimits | None = None
+    ) -> Engine:
         """Rebuild an engine from :meth:`to_state` output (same specs and lateness)."""
-        engine = cls(specs, lateness_ns)
+        engine = cls(specs, lateness_ns, limits)
         bars = [_bar_from_state(item) for item in data["bars"]]
         for row in data["symbols"]:
             sym = str(row[0])
@@ -285,6 +320,11 @@ class Engine:
         heapq.heapify(engine._due)
         engine._next_due = engine._due[0][0] if engine._due else _NO_CLOSE
         engine._watermark = int(data["watermark"])
+        # Written before the event-time guard existed: the watermark is confirmed time.
+        default_horizon = engine._watermark + engine._max_jump_ns if engine._watermark else UNCONFIRMED
+        engine._horizon = int(data.get("horizon", default_horizon))
+        if "guard" in data:
+            engine._guard.restore(data["guard"], decode_tick)
         engine._closed_through = int(data["closed_through"])
         engine._order = int(data["order"])
         stats = engine.stats
@@ -298,8 +338,6 @@ class Engine:
     # -- the hot path ----------------------------------------------------------------
 
     def _on_record(self, record: Any, position: int, source: str) -> None:
-        # Deliberately one long function: it runs once per tick and every call and
-        # attribute lookup it saves shows in throughput.
         stats = self.stats
         stats.records += 1
         try:
@@ -309,14 +347,47 @@ class Engine:
             stats.rejected[exc.reason.value] += 1
             self._rejects.append(_reject_of(record, position, source, exc.reason, exc.detail))
             return
+        t = tick.ts
+        if t > self.wall_limit_ns:
+            ahead = format_duration_ns(t - self.wall_limit_ns)
+            self._refuse(
+                record,
+                position,
+                source,
+                RejectReason.FUTURE,
+                f"ts is more than {ahead} past the wall clock's limit",
+                tick,
+            )
+            return
+        if t > self._horizon and not self._wall_floor_ns <= t:
+            # Ahead of the stream's confirmed time (and not near the live wall clock).
+            self._hold(tick, record, position, source)
+            return
+        if self._guard.held:
+            self._use_held([], self._guard.normal(tick.sym))
+        self._accept(tick, record, position, source)
+
+    def _accept(self, tick: Tick, record: Any, position: int, source: str) -> None:
+        # Deliberately one long function: it runs once per tick and every call and
+        # attribute lookup it saves shows in throughput.
+        stats = self.stats
         state = self._symbols.get(tick.sym)
         if state is None:
+            if len(self._symbols) >= self._max_symbols:
+                detail = f"this stream already has {self._max_symbols:,} symbols (limits.max_symbols)"
+                self._refuse(record, position, source, RejectReason.SYMBOL_LIMIT, detail, tick)
+                return
             state = self._symbols[tick.sym] = _SymbolState(tick.sym, len(self.specs))
         book = state.book
         regressions = book.time_regressions
-        outcome = book.admit(tick)
+        outcome = book.admit(tick, self._max_behind_ns)
         if outcome is _DUPLICATE:
             stats.duplicates += 1
+            return
+        if outcome is _BACKDATED:
+            behind = format_duration_ns(book.last_ts - tick.ts)
+            detail = f"ts is {behind} behind the symbol's last ts (limit {format_duration_ns(self._max_behind_ns)})"
+            self._refuse(record, position, source, RejectReason.BACKDATED, detail, tick)
             return
         stats.accepted += 1
         gap = 1 if outcome is _GAP else 0
@@ -326,6 +397,7 @@ class Engine:
         t = tick.ts
         if t > self._watermark:
             self._watermark = t
+            self._horizon = t + self._max_jump_ns
             limit = t - self.lateness_ns
             if limit > self._closed_through:
                 self._closed_through = limit
@@ -417,6 +489,28 @@ class Engine:
                 bar.integrate(state.spread, state.spread_since, t)
                 bars[index] = None
                 self._emit(bar, book_state, True, t == bar.start)
+
+    # -- the event-time guard (rare paths) ---------------------------------------------
+
+    def _hold(self, tick: Tick, record: Any, position: int, source: str) -> None:
+        symbols = self._symbols
+        only_symbol = not symbols or (len(symbols) == 1 and tick.sym in symbols)
+        release, rejected = self._guard.hold(tick, record, position, source, only_symbol)
+        self._use_held(release, rejected)
+
+    def _use_held(self, release: list[HeldTick], rejected: list[HeldTick]) -> None:
+        """Reject contradicted held ticks; use confirmed ones, in arrival order."""
+        for entry in rejected:
+            detail = "ts is far ahead of the stream's time and the rest of the stream did not follow it"
+            self._refuse(entry.record, entry.position, entry.source, RejectReason.FUTURE, detail, entry.tick)
+        for entry in release:
+            if self._guard.held:
+                self._use_held([], self._guard.normal(entry.tick.sym, entry.order))
+            self._accept(entry.tick, entry.record, entry.position, entry.source)
+
+    def _refuse(self, record: Any, position: int, source: str, reason: RejectReason, detail: str, tick: Tick) -> None:
+        self.stats.rejected[reason.value] += 1
+        self._rejects.append(_reject_of(record, position, source, reason, detail, tick))
 
     # -- time bar closing ------------------------------------------------------------
 

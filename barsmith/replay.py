@@ -43,5 +43,7 @@ def replay_files(
         max_file_rows=pq_settings.max_file_rows,
         compression=pq_settings.compression,
     )
-    runner = Runner(specs, settings.lateness_ns, source, [sink], ParquetRejectSink(out), progress)
+    runner = Runner(
+        specs, settings.lateness_ns, source, [sink], ParquetRejectSink(out), progress, limits=settings.stream_limits()
+    )
     return runner.run()

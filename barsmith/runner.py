@@ -21,6 +21,7 @@ from dataclasses import dataclass, field
 
 from barsmith.bars.spec import BarSpec
 from barsmith.engine import Engine, EngineStats
+from barsmith.ingest.eventtime import StreamLimits
 from barsmith.sinks.base import BarSink, RejectSink
 from barsmith.sources.base import RecordBatch, Source
 
@@ -75,9 +76,11 @@ class Runner:
         reject_sink: RejectSink,
         progress: ProgressHook | None = None,
         housekeeping_interval_s: float | None = None,
+        limits: StreamLimits | None = None,
     ) -> None:
         self.specs = tuple(specs)
         self.lateness_ns = lateness_ns
+        self.limits = limits
         self.source = source
         self.sinks = tuple(sinks)
         self.reject_sink = reject_sink
@@ -198,7 +201,7 @@ class Runner:
     def engine_for(self, stream: str) -> Engine:
         engine = self.engines.get(stream)
         if engine is None:
-            engine = self.engines[stream] = Engine(self.specs, self.lateness_ns)
+            engine = self.engines[stream] = Engine(self.specs, self.lateness_ns, self.limits)
         return engine
 
     async def process_batch(self, batch: RecordBatch) -> None:

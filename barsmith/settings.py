@@ -23,6 +23,7 @@ from pydantic_settings import (
 
 from barsmith.bars.spec import BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
+from barsmith.ingest.eventtime import StreamLimits
 
 
 class ParquetSettings(BaseModel):
@@ -123,6 +124,32 @@ class ServiceSettings(BaseModel):
     log_json: bool = False
 
 
+class EventTimeSettings(BaseModel):
+    """Event-time guards: one bad clock must not poison a stream (README, "Event time")."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    max_jump_s: float = Field(
+        3_600.0, gt=0, description="a tick this far ahead of the stream's time waits for confirmation"
+    )
+    max_ahead_of_wall_s: float | None = Field(
+        600.0, gt=0, description="the service rejects ticks this far past the wall clock (unset: no limit)"
+    )
+    max_behind_s: float = Field(300.0, gt=0, description="a tick this far behind its symbol's time is rejected")
+    max_held_ticks: int = Field(10_000, gt=0, description="at most this many ticks wait for confirmation")
+    contradict_messages: int = Field(
+        1_000, gt=0, description="a waiting tick is rejected after this many ticks in the stream's time"
+    )
+
+
+class LimitsSettings(BaseModel):
+    """Bounds that keep memory in check under hostile input."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    max_symbols: int = Field(200_000, gt=0, description="distinct symbols per stream (replay, or a partition)")
+
+
 class Settings(BaseSettings):
     """Every setting barsmith reads; units are in the names."""
 
@@ -137,6 +164,8 @@ class Settings(BaseSettings):
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
     service: ServiceSettings = Field(default_factory=ServiceSettings)
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
+    event_time: EventTimeSettings = Field(default_factory=EventTimeSettings)
+    limits: LimitsSettings = Field(default_factory=LimitsSettings)
 
     @field_validator("bars")
     @classmethod
@@ -158,6 +187,19 @@ class Settings(BaseSettings):
     def lateness_ns(self) -> int:
         return self.lateness_ms * 1_000_000
 
+    def stream_limits(self) -> StreamLimits:
+        """The per-stream guards and bounds the engines apply."""
+        guard = self.event_time
+        ahead = guard.max_ahead_of_wall_s
+        return StreamLimits(
+            max_jump_ns=_ns(guard.max_jump_s),
+            max_ahead_of_wall_ns=_ns(ahead) if ahead is not None else None,
+            max_behind_ns=_ns(guard.max_behind_s),
+            max_held=guard.max_held_ticks,
+            contradict_messages=guard.contradict_messages,
+            max_symbols=self.limits.max_symbols,
+        )
+
     def masked(self) -> dict[str, Any]:
         """The effective settings as plain data, secrets shown as ``**********``."""
         data: dict[str, Any] = self.model_dump(mode="json")
@@ -177,6 +219,10 @@ class Settings(BaseSettings):
         if toml_file is not None:
             sources.append(TomlConfigSettingsSource(settings_cls, toml_file=toml_file))
         return tuple(sources)
+
+
+def _ns(seconds: float) -> int:
+    return round(seconds * 1e9)
 
 
 # The TOML file of the settings being built (pydantic-settings builds sources per class).

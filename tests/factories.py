@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 from barsmith.bars.bar import Bar
 from barsmith.bars.spec import parse_specs
 from barsmith.engine import Engine
+from barsmith.ingest.eventtime import StreamLimits
 
 T0 = 1_798_794_000_000_000_000  # 2027-01-01 09:00 UTC, an invented session start
 S = 1_000_000_000  # one second in ns
@@ -34,10 +35,14 @@ def trade(sym: str, ts: int, seq: int, px: float, qty: float, **fields: Any) -> 
 
 
 def run_engine(
-    records: Sequence[Any], specs: Sequence[str] = ("time:1m",), lateness_ns: int = 0, finish: bool = True
+    records: Sequence[Any],
+    specs: Sequence[str] = ("time:1m",),
+    lateness_ns: int = 0,
+    finish: bool = True,
+    limits: StreamLimits | None = None,
 ) -> tuple[list[Bar], Engine]:
     """Feed records through one engine; returns (bars in emission order, engine)."""
-    engine = Engine(parse_specs(list(specs)), lateness_ns)
+    engine = Engine(parse_specs(list(specs)), lateness_ns, limits)
     engine.process(list(records), list(range(len(records))), "test")
     bars = engine.take_bars()
     if finish:

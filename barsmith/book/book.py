@@ -9,7 +9,7 @@ Rules (the README's "Book rules" table; tests pin every line):
   ``seq == last + 1`` → accepted, quotes applied if live; ``seq > last + 1`` → a gap:
   accepted, counted, ``RESYNCING`` until the next snapshot.
 * Event time per symbol never goes backwards: a ``ts`` below the last accepted one is
-  raised to it (a counted *time regression*).
+  raised to it (a counted *time regression*); one too far below it is refused.
 
 Transitions::
 
@@ -38,11 +38,13 @@ class Outcome(enum.Enum):
     ACCEPTED = "accepted"
     GAP = "gap"  # accepted, after a sequence gap
     DUPLICATE = "duplicate"  # dropped: seq at or below the last accepted
+    BACKDATED = "backdated"  # rejected: ts implausibly far behind the symbol's last ts
 
 
 _LIVE: Final = BookStatus.LIVE
 _RESYNCING: Final = BookStatus.RESYNCING
 _GAP: Final = Outcome.GAP
+NO_LIMIT_NS: Final = 2**62  # no plausibility limit on how far behind a message may be
 
 
 class SymbolBook:
@@ -82,10 +84,12 @@ class SymbolBook:
             return self.ask_px - self.bid_px
         return None
 
-    def admit(self, tick: Tick) -> Outcome:
-        """Judge a message: the sequence rules and the event-time clamp. Updates only
+    def admit(self, tick: Tick, max_behind_ns: int = NO_LIMIT_NS) -> Outcome:
+        """Judge a message: the sequence rules, then the event-time clamp. Updates only
         ``last_seq``/``last_ts`` (and may raise ``tick.ts``); the book's status and
-        quotes are untouched until :meth:`apply`.
+        quotes are untouched until :meth:`apply`. A message more than ``max_behind_ns``
+        behind the symbol's last ``ts`` is not clamped but refused (``BACKDATED``): it
+        would land in the current bar with a time it does not have.
 
         The split matters: between the two, the engine closes the bars that end before
         this message, and those must take the book as it stood after *their* last
@@ -98,6 +102,8 @@ class SymbolBook:
             return Outcome.DUPLICATE
         else:
             outcome = Outcome.GAP
+        if tick.ts < self.last_ts - max_behind_ns:
+            return Outcome.BACKDATED
         self.last_seq = seq
         if tick.ts < self.last_ts:
             tick.ts = self.last_ts

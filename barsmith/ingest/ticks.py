@@ -41,6 +41,9 @@ class RejectReason(enum.Enum):
     BAD_VALUE = "bad_value"
     UNKNOWN_KIND = "unknown_kind"
     HALF_TRADE = "half_trade"
+    FUTURE = "future"
+    BACKDATED = "backdated"
+    SYMBOL_LIMIT = "symbol_limit"
     LATE = "late"
 
 

@@ -201,26 +201,36 @@ class ParquetBarSink:
 
 
 class ParquetRejectSink:
-    """Rejected records to ``DIR/_rejects.parquet`` (always written, possibly empty)."""
+    """Rejected records to ``DIR/_rejects.parquet`` (always written, possibly empty).
 
-    def __init__(self, directory: Path, file_name: str = "_rejects.parquet") -> None:
+    Rejects are buffered into row groups of ``row_group_rows``: a flood of bad input
+    would otherwise write one small row group per batch, and a Parquet writer keeps
+    every row group's metadata in memory until the file is closed."""
+
+    def __init__(self, directory: Path, file_name: str = "_rejects.parquet", row_group_rows: int = 16_384) -> None:
         self.path = directory / file_name
         self._file: _RollingFile | None = None
+        self._pending: list[Reject] = []
+        self._row_group_rows = row_group_rows
         self.count = 0
 
     async def write(self, rejects: Sequence[Reject]) -> None:
-        if not rejects:
-            return
+        self._pending.extend(rejects)
+        self.count += len(rejects)
+        if len(self._pending) >= self._row_group_rows:
+            self._write_pending()
+
+    def _write_pending(self) -> None:
         if self._file is None:
             self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
-        rows: list[dict[str, Any]] = [r.as_row() for r in rejects]
-        self._file.write(pa.Table.from_pylist(rows, schema=REJECT_SCHEMA))
-        self.count += len(rejects)
+        if self._pending:
+            self._file.write(pa.Table.from_pylist([r.as_row() for r in self._pending], schema=REJECT_SCHEMA))
+            self._pending = []
 
     async def close(self) -> None:
-        if self._file is None:
-            self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
         try:
+            self._write_pending()
+            self._file = self._file if self._file is not None else _RollingFile(self.path, REJECT_SCHEMA, "zstd")
             self._file.commit()
         except OSError as exc:
             raise SinkError(f"cannot finish {self.path}: {exc}") from exc

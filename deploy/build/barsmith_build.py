@@ -17,6 +17,7 @@ from setuptools import build_meta as _setuptools_backend
 HOT_MODULES = [
     "barsmith/ingest/ticks.py",
     "barsmith/ingest/framing.py",
+    "barsmith/ingest/eventtime.py",
     "barsmith/book/book.py",
     "barsmith/bars/bar.py",
     "barsmith/engine.py",
