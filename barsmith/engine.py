@@ -55,6 +55,7 @@ _DUPLICATE: Final = Outcome.DUPLICATE
 _GAP: Final = Outcome.GAP
 _BACKDATED: Final = Outcome.BACKDATED
 _NO_CLOSE: Final = 2**63  # "no time bar is due" (above any int64 timestamp)
+_MAX_TS: Final = 2**63 - 1
 
 
 @dataclass(slots=True)
@@ -124,14 +125,17 @@ class Engine:
         self.stats = EngineStats()
         # Event-time guards: ticks above the horizon are held (the stream's time is
         # confirmed up to the watermark, and ticks may run max_jump_ns ahead of it);
-        # wall_limit_ns is set by the live service (wall clock + its limit).
+        # the live service sets the wall clock (set_wall_clock) before each batch.
         self._guard = ClockGuard(self.limits)
         self._horizon = UNCONFIRMED
         self._max_jump_ns = self.limits.max_jump_ns
         self._max_behind_ns = self.limits.max_behind_ns
         self._max_symbols = self.limits.max_symbols
-        self.wall_limit_ns = _NO_CLOSE  # later ticks are rejected as future
-        self._wall_floor_ns = _NO_CLOSE  # ticks from here to wall_limit_ns are never held
+        # A flag, not a huge sentinel: comparing a tick's time with an int beyond the
+        # compiled code's small-int range would box the time on every tick.
+        self._wall_clock = False
+        self._wall_limit_ns = 0  # later ticks are rejected as future
+        self._wall_floor_ns = 0  # ticks from here to _wall_limit_ns are never held
         self._time_specs = [(i, s.interval_ns, s.text) for i, s in enumerate(self.specs) if s.is_time]
         self._event_specs = [
             (i, s.kind, s.threshold * (1.0 - THRESHOLD_RTOL), s.text) for i, s in enumerate(self.specs) if not s.is_time
@@ -214,7 +218,8 @@ class Engine:
         ``limits.max_jump_ns`` of it needs no confirmation from the rest of the stream
         (the wall clock confirms it)."""
         ahead = self.limits.max_ahead_of_wall_ns
-        self.wall_limit_ns = now_ns + ahead if ahead is not None else _NO_CLOSE
+        self._wall_clock = True
+        self._wall_limit_ns = now_ns + ahead if ahead is not None else _MAX_TS
         self._wall_floor_ns = now_ns - self._max_jump_ns
 
     def take_bars(self) -> list[Bar]:
@@ -348,8 +353,8 @@ class Engine:
             self._rejects.append(_reject_of(record, position, source, exc.reason, exc.detail))
             return
         t = tick.ts
-        if t > self.wall_limit_ns:
-            ahead = format_duration_ns(t - self.wall_limit_ns)
+        if self._wall_clock and t > self._wall_limit_ns:
+            ahead = format_duration_ns(t - self._wall_limit_ns)
             self._refuse(
                 record,
                 position,
@@ -359,7 +364,7 @@ class Engine:
                 tick,
             )
             return
-        if t > self._horizon and not self._wall_floor_ns <= t:
+        if t > self._horizon and not (self._wall_clock and self._wall_floor_ns <= t):
             # Ahead of the stream's confirmed time (and not near the live wall clock).
             self._hold(tick, record, position, source)
             return
