@@ -239,7 +239,7 @@ def _cmd_publish(args: argparse.Namespace) -> int:
     import asyncio
 
     from barsmith.sources.files import check_input_paths
-    from barsmith.tools.bus import publish_feed
+    from barsmith.tools.feeds import publish_feed
 
     if args.speed is not None and args.speed <= 0:
         raise ConfigError("--speed must be > 0")
@@ -258,7 +258,7 @@ def _cmd_publish(args: argparse.Namespace) -> int:
 def _cmd_record(args: argparse.Namespace) -> int:
     import asyncio
 
-    from barsmith.tools.bus import record_topic
+    from barsmith.tools.feeds import record_topic
 
     count = asyncio.run(record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0))
     print(f"recorded {count:,} records from {args.topic} to {args.out}", file=sys.stderr)
