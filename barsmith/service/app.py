@@ -194,22 +194,15 @@ def run_service(settings: Settings) -> RunSummary:
     return runner.run()
 
 
-def run_workers(settings: Settings, argv: Sequence[str]) -> int:
-    """Start ``settings.service.workers`` processes in one consumer group and wait.
-
-    Each child runs ``barsmith run`` with the same arguments and ``--workers 1``;
-    child i serves metrics on port base+i. Signals are forwarded to every child.
-    """
-    count = settings.service.workers
-    base_port = settings.metrics.port
+def run_workers(commands: Sequence[Sequence[str]]) -> int:
+    """Run one worker process per command (the CLI builds them: same group, one
+    metrics port each) and wait for all; signals are forwarded to every child.
+    Returns the worst exit status."""
     children: list[subprocess.Popen[bytes]] = []
-    for index in range(count):
-        args = [sys.executable, "-m", "barsmith", *argv, "--workers", "1"]
-        if base_port:
-            args += ["--metrics-port", str(base_port + index)]
+    for index, command in enumerate(commands):
         env = dict(os.environ, BARSMITH_WORKER_INDEX=str(index))
-        children.append(subprocess.Popen(args, env=env))
-    log.info("started %d workers: pids %s", count, ", ".join(str(c.pid) for c in children))
+        children.append(subprocess.Popen(list(command), env=env))
+    log.info("started %d workers: pids %s", len(children), ", ".join(str(c.pid) for c in children))
 
     def forward(signum: int, _frame: Any) -> None:
         for child in children:
