@@ -257,7 +257,12 @@ async def test_a_rebalance_hands_partitions_over_through_their_checkpoints(feed:
     second = exactly_once(bus, assigned=[], exit_when_idle_s=0.6)
     tasks = [asyncio.create_task(first.serve()), asyncio.create_task(second.serve())]
     await until(lambda: first.total_stats().records > 1_500, tasks[0], "no progress")
+    positions = {stream: _source(first).partitions[stream] for stream in ("ticks[2]", "ticks[3]")}
     await _source(first).revoke([2, 3])
+    # The final checkpoints on revocation cover everything the first member processed.
+    assert {stream: bus.topic.committed[stream] for stream in positions} == {
+        stream: position.next_offset for stream, position in positions.items()
+    }
     await _source(second).assign([2, 3])
     assert first.partitions.state("ticks[2]") is None and second.partitions.state("ticks[2]") == "live"
     bus.topic.publish(rest)
