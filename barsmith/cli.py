@@ -205,24 +205,35 @@ def _cmd_run(args: argparse.Namespace) -> int:
     configure_logging(settings.service.log_json)
     if settings.service.workers > 1:
         argv = list(sys.argv[1:] if args.argv is None else args.argv)
-        return run_workers(settings, _strip_workers(argv))
+        return run_workers(_worker_commands(argv, settings.service.workers, settings.metrics.port))
     summary = run_service(settings)
     for line in summary.lines():
         print(line, file=sys.stderr)
     return EXIT_OK
 
 
-def _strip_workers(argv: list[str]) -> list[str]:
+def _worker_commands(argv: list[str], count: int, base_port: int | None) -> list[list[str]]:
+    """``barsmith run`` with the same arguments, once per worker: ``--workers 1`` and,
+    when the metrics port is a fixed one, port base+i for worker i."""
+    drop = ("--workers", "--metrics-port") if base_port else ("--workers",)
+    common = [sys.executable, "-m", "barsmith", *_without_flags(argv, drop), "--workers", "1"]
+    if not base_port:
+        return [list(common) for _ in range(count)]
+    return [[*common, "--metrics-port", str(base_port + index)] for index in range(count)]
+
+
+def _without_flags(argv: list[str], flags: tuple[str, ...]) -> list[str]:
+    """``argv`` without ``flags`` and their values (``--flag V`` and ``--flag=V``)."""
     out: list[str] = []
     skip = False
     for arg in argv:
         if skip:
             skip = False
             continue
-        if arg == "--workers":
+        if arg in flags:
             skip = True
             continue
-        if arg.startswith("--workers="):
+        if arg.startswith(tuple(f"{flag}=" for flag in flags)):
             continue
         out.append(arg)
     return out
@@ -239,7 +250,7 @@ def _cmd_publish(args: argparse.Namespace) -> int:
     import asyncio
 
     from barsmith.sources.files import check_input_paths
-    from barsmith.tools.bus import publish_feed
+    from barsmith.tools.feeds import publish_feed
 
     if args.speed is not None and args.speed <= 0:
         raise ConfigError("--speed must be > 0")
@@ -258,7 +269,7 @@ def _cmd_publish(args: argparse.Namespace) -> int:
 def _cmd_record(args: argparse.Namespace) -> int:
     import asyncio
 
-    from barsmith.tools.bus import record_topic
+    from barsmith.tools.feeds import record_topic
 
     count = asyncio.run(record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0))
     print(f"recorded {count:,} records from {args.topic} to {args.out}", file=sys.stderr)

@@ -77,14 +77,17 @@ class Runner:
         progress: ProgressHook | None = None,
         housekeeping_interval_s: float | None = None,
         limits: StreamLimits | None = None,
+        engines: dict[str, Engine] | None = None,
     ) -> None:
+        """``limits``: the event-time guards and bounds of every engine (default: the
+        defaults); ``engines``: the table of per-stream engines to fill (default: a new one)."""
         self.specs = tuple(specs)
         self.lateness_ns = lateness_ns
         self.limits = limits
         self.source = source
         self.sinks = tuple(sinks)
         self.reject_sink = reject_sink
-        self.engines: dict[str, Engine] = {}
+        self.engines: dict[str, Engine] = engines if engines is not None else {}
         self.should_exit = False
         self.force_exit = False
         self._progress = progress
@@ -147,6 +150,8 @@ class Runner:
 
     async def startup(self) -> None:
         self._started = time.perf_counter()
+        for sink in self.sinks:
+            await sink.start()
 
     async def main_loop(self) -> None:
         interval = self._housekeeping_interval_s
@@ -175,7 +180,7 @@ class Runner:
         """Periodic work between batches (idle rule, commits, drain mode); none in replay."""
 
     async def shutdown(self) -> RunSummary:
-        """Close what is final, flush the sinks, :meth:`after_flush`, close; in that order."""
+        """Close what is final, flush the sinks, close; in that order."""
         if not self.force_exit:
             await self.final_flush()
         for sink in self.sinks:
@@ -185,16 +190,12 @@ class Runner:
         return RunSummary(self.total_stats(), time.perf_counter() - self._started, self.should_exit)
 
     async def final_flush(self) -> None:
-        """Close open bars (input ended), hand them over, flush the sinks, :meth:`after_flush`."""
+        """Close open bars (input ended), hand them over, flush the sinks."""
         for stream, engine in self.engines.items():
             engine.finish()
             await self.deliver(stream, engine)
         for sink in self.sinks:
             await sink.flush()
-        await self.after_flush()
-
-    async def after_flush(self) -> None:
-        """Runs once everything is flushed at shutdown (the service commits offsets here)."""
 
     # -- work ------------------------------------------------------------------------
 

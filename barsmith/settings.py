@@ -154,7 +154,11 @@ class Settings(BaseSettings):
     """Every setting barsmith reads; units are in the names."""
 
     model_config = SettingsConfigDict(
-        env_prefix="BARSMITH_", env_nested_delimiter="__", extra="forbid", validate_default=True
+        env_prefix="BARSMITH_",
+        env_nested_delimiter="__",
+        env_parse_none_str="",  # an empty variable unsets an optional setting
+        extra="forbid",
+        validate_default=True,
     )
 
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")

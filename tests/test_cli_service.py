@@ -53,3 +53,20 @@ def test_second_signal_forces_exit() -> None:
     assert runner.should_exit and not runner.force_exit and forced == []
     runner.handle_exit(signal.SIGTERM)
     assert runner.force_exit and forced == [True]
+
+
+def test_workers_get_their_command_lines_from_the_cli() -> None:
+    import sys
+
+    from barsmith.cli import _worker_commands
+
+    argv = ["run", "--bootstrap", "k:9092", "--workers", "2", "--metrics-port=9500", "--bars", "time:1m"]
+    commands = _worker_commands(argv, 2, 9500)
+    head = [sys.executable, "-m", "barsmith", "run", "--bootstrap", "k:9092", "--bars", "time:1m", "--workers", "1"]
+    assert commands == [[*head, "--metrics-port", "9500"], [*head, "--metrics-port", "9501"]]
+    # Metrics on any free port (0) or none: every worker keeps the flags as given.
+    argv = ["run", "--workers=3", "--metrics-port", "0"]
+    assert (
+        _worker_commands(argv, 3, 0)
+        == [[sys.executable, "-m", "barsmith", "run", "--metrics-port", "0", "--workers", "1"]] * 3
+    )

@@ -27,13 +27,13 @@ from hypothesis import strategies as st
 
 from barsmith.bars.bar import BAR_COLUMNS, Bar
 from barsmith.bars.spec import parse_specs
+from barsmith.bus.topics import partition_for
 from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine
 from barsmith.replay import replay_files
 from barsmith.runner import Runner
 from barsmith.sinks.base import MemorySink
 from barsmith.sources.files import FileSource
-from barsmith.sources.partitioning import partition_for
 
 SYMS = ["FENWORTH.KMX", "MARROWAY.KMX", "QUILLFERN.KMX"]
 SPEC_TEXTS = ["time:1s", "time:3s", "ticks:2", "volume:5", "notional:120"]

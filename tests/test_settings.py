@@ -42,3 +42,12 @@ def test_every_problem_is_listed(tmp_path: Path) -> None:
 def test_missing_config_file() -> None:
     with pytest.raises(ConfigError, match="config file not found"):
         load_settings("/nonexistent/barsmith.toml")
+
+
+def test_an_empty_environment_variable_unsets_an_optional_setting(monkeypatch: pytest.MonkeyPatch) -> None:
+    # README, "Settings": BARSMITH_METRICS__PORT="" means no metrics endpoint.
+    monkeypatch.setenv("BARSMITH_METRICS__PORT", "")
+    monkeypatch.setenv("BARSMITH_EVENT_TIME__MAX_AHEAD_OF_WALL_S", "")
+    settings = load_settings()
+    assert settings.metrics.port is None and settings.event_time.max_ahead_of_wall_s is None
+    assert settings.stream_limits().max_ahead_of_wall_ns is None

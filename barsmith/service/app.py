@@ -1,7 +1,9 @@
-"""Assembling and running the service from settings; ``--workers N`` supervision."""
+"""Assembling the service from settings (all its wiring, in one place), logging, and
+supervising ``--workers N`` processes."""
 
 from __future__ import annotations
 
+import functools
 import json
 import logging
 import os
@@ -11,15 +13,20 @@ import subprocess
 import sys
 import time
 from collections import Counter
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any
 
+from barsmith.bars.bar import Bar
+from barsmith.bus.checkpoints import KafkaCheckpointBus
 from barsmith.errors import ConfigError
 from barsmith.ingest.rejects import Reject
 from barsmith.runner import RunSummary
-from barsmith.service.daemon import ServiceRunner
+from barsmith.service.daemon import ServiceRunner, service_metrics
+from barsmith.service.delivery import AtLeastOnce, DeliveryFactory
+from barsmith.service.exactly_once import ExactlyOnce
+from barsmith.service.partitions import Partitions
 from barsmith.settings import Delivery, Settings
-from barsmith.sinks.base import BarSink, RejectSink
+from barsmith.sinks.base import BarSink, CheckpointedSink, RejectSink
 from barsmith.sinks.kafka import KafkaBarSink
 from barsmith.sinks.parquet import ParquetBarSink, ParquetPartSink, ParquetRejectSink
 from barsmith.sources.kafka import KafkaSource
@@ -100,35 +107,70 @@ class LogRejectSink:
         return None
 
 
-def build_service(settings: Settings) -> ServiceRunner:
-    """The service for ``settings``: a Kafka source, the configured sinks, metrics."""
+PublishObserver = Callable[[Bar, float], None]
+_Parts = tuple[list[BarSink], RejectSink, DeliveryFactory]
+
+
+def build_service(settings: Settings, *, on_published: PublishObserver | None = None) -> ServiceRunner:
+    """The service for ``settings``, wired here and nowhere else: a Kafka source, the
+    configured sinks with their callbacks, the delivery strategy, the metrics.
+    ``on_published(bar, delay_s)`` also hears of every bar the broker acknowledged."""
     if not settings.kafka.output_topic and settings.parquet.dir is None:
         raise ConfigError("no sink: give --output-topic and/or --parquet-dir")
-    specs = settings.bar_specs()
-    sinks: list[BarSink] = []
-    if settings.kafka.output_topic:
-        sinks.append(KafkaBarSink(settings.kafka, settings.kafka.output_topic))
-    prefix = f"{settings.kafka.client_id}-{socket.gethostname()}-{os.getpid()}-{time.time_ns() // 1_000_000}-"
+    exactly_once = settings.service.delivery is Delivery.EXACTLY_ONCE
+    source = KafkaSource(settings.kafka, pause_on_assign=exactly_once)
+    partitions = Partitions()
+    metrics = service_metrics(partitions, source)
+    observe: PublishObserver = metrics.observe_publish
+    if on_published is not None:
+        observe = functools.partial(_tell_both, metrics.observe_publish, on_published)
+    sinks, reject_sink, delivery = (_exactly_once if exactly_once else _at_least_once)(settings, observe)
+    return ServiceRunner(settings, source, sinks, reject_sink, delivery, partitions=partitions, metrics=metrics)
+
+
+def _tell_both(first: PublishObserver, second: PublishObserver, bar: Bar, delay_s: float) -> None:
+    first(bar, delay_s)
+    second(bar, delay_s)
+
+
+def _exactly_once(settings: Settings, observe: PublishObserver) -> _Parts:
+    """Per-partition transactions: the bus sink sends each partition's bars in its
+    transaction; Parquet parts (and rejects beside them) commit with its checkpoints."""
+    bus = KafkaCheckpointBus(settings)
+    sinks: list[CheckpointedSink] = []
     reject_sink: RejectSink = LogRejectSink()
+    if settings.kafka.output_topic:
+        topic = settings.kafka.output_topic
+        sinks.append(KafkaBarSink(settings.kafka, topic, on_published=observe, producer_for=bus.producer_for))
     pq = settings.parquet
-    if pq.dir is not None and settings.service.delivery is Delivery.EXACTLY_ONCE:
-        # Parts per input partition, committed with its checkpoints; rejects beside them.
+    if pq.dir is not None:
         pq.dir.mkdir(parents=True, exist_ok=True)
         part_sink = ParquetPartSink(
             pq.dir,
-            specs,
+            settings.bar_specs(),
             roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
             carry_max_rows=pq.row_group_rows,
             compression=pq.compression,
         )
         sinks.append(part_sink)
         reject_sink = part_sink
-    elif pq.dir is not None:
+    return list(sinks), reject_sink, functools.partial(ExactlyOnce, settings, sinks, bus)
+
+
+def _at_least_once(settings: Settings, observe: PublishObserver) -> _Parts:
+    """One idempotent bar producer; rolling Parquet files named after this process."""
+    sinks: list[BarSink] = []
+    reject_sink: RejectSink = LogRejectSink()
+    if settings.kafka.output_topic:
+        sinks.append(KafkaBarSink(settings.kafka, settings.kafka.output_topic, on_published=observe))
+    pq = settings.parquet
+    if pq.dir is not None:
         pq.dir.mkdir(parents=True, exist_ok=True)
+        prefix = f"{settings.kafka.client_id}-{socket.gethostname()}-{os.getpid()}-{time.time_ns() // 1_000_000}-"
         sinks.append(
             ParquetBarSink(
                 pq.dir,
-                specs,
+                settings.bar_specs(),
                 row_group_rows=pq.row_group_rows,
                 max_file_rows=pq.max_file_rows,
                 roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
@@ -137,7 +179,7 @@ def build_service(settings: Settings) -> ServiceRunner:
             )
         )
         reject_sink = ParquetRejectSink(pq.dir, f"_rejects-{prefix.rstrip('-')}.parquet")
-    return ServiceRunner(settings, KafkaSource(settings.kafka), sinks, reject_sink)
+    return sinks, reject_sink, functools.partial(AtLeastOnce, settings)
 
 
 def run_service(settings: Settings) -> RunSummary:
@@ -152,22 +194,15 @@ def run_service(settings: Settings) -> RunSummary:
     return runner.run()
 
 
-def run_workers(settings: Settings, argv: Sequence[str]) -> int:
-    """Start ``settings.service.workers`` processes in one consumer group and wait.
-
-    Each child runs ``barsmith run`` with the same arguments and ``--workers 1``;
-    child i serves metrics on port base+i. Signals are forwarded to every child.
-    """
-    count = settings.service.workers
-    base_port = settings.metrics.port
+def run_workers(commands: Sequence[Sequence[str]]) -> int:
+    """Run one worker process per command (the CLI builds them: same group, one
+    metrics port each) and wait for all; signals are forwarded to every child.
+    Returns the worst exit status."""
     children: list[subprocess.Popen[bytes]] = []
-    for index in range(count):
-        args = [sys.executable, "-m", "barsmith", *argv, "--workers", "1"]
-        if base_port:
-            args += ["--metrics-port", str(base_port + index)]
+    for index, command in enumerate(commands):
         env = dict(os.environ, BARSMITH_WORKER_INDEX=str(index))
-        children.append(subprocess.Popen(args, env=env))
-    log.info("started %d workers: pids %s", count, ", ".join(str(c.pid) for c in children))
+        children.append(subprocess.Popen(list(command), env=env))
+    log.info("started %d workers: pids %s", len(children), ", ".join(str(c.pid) for c in children))
 
     def forward(signum: int, _frame: Any) -> None:
         for child in children:

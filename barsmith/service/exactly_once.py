@@ -1,27 +1,28 @@
 """Exactly-once delivery: per input partition, bars, checkpoint and offsets in one transaction.
 
-Every assigned input partition has an *owner* here: a transactional producer whose
-``transactional_id`` is ``<group>.<topic>.<partition>`` (starting it fences any
-earlier owner of the partition and aborts that owner's open transaction), the last
-committed checkpoint, and a health flag. A checkpoint, per partition, every
+Every assigned input partition has an *owner* here: its transaction on the
+:class:`~barsmith.bus.checkpoints.CheckpointBus` (opening it fences any earlier
+owner of the partition and aborts that owner's open transaction) and its last
+committed checkpoint; its :class:`~barsmith.service.partitions.PartitionState` is
+kept with the other held partitions. A checkpoint, per partition, every
 ``checkpoint.interval_s`` or ``checkpoint.every_messages`` (and on revocation and
 shutdown), is one transaction:
 
     bars since the last checkpoint (already sent inside the open transaction)
-    + the engine's checkpoint → the compacted state topic, key = stream name
-    + the next input offset → the consumer group (``send_offsets_to_transaction``)
+    + the engine's checkpoint → the state store (on Kafka: a compacted topic)
+    + the next input offset → the consumer group
     → commit; then the checkpointed sinks publish what they staged (Parquet parts).
 
-On assignment the owner reads the partition's latest checkpoint, restores the engine
-and the sinks' staged state, and seeks the consumer to the checkpoint's offset. When
-a transaction fails (broker gone, timeout), the owner aborts it and *rewinds*:
-restores the last committed checkpoint and seeks back, so the bars of the aborted
-transaction are built again from the same input. A fenced owner (another producer
-took the partition's transactional id) stops touching the partition and waits for
-the revocation; if the group still assigns the partition to this process two
-session timeouts later (the fencer was a zombie, or the broker aborted a transaction
-that outlived ``transaction_timeout_ms``), it takes the partition back from its
-checkpoint.
+On assignment (``restoring``) the owner reads the partition's latest checkpoint,
+restores the engine and the sinks' staged state, and seeks the source to the
+checkpoint's offset (``live``). When a transaction fails (broker gone, timeout), the
+partition is ``failed``: the owner aborts the transaction and *rewinds* — restores
+the last committed checkpoint and seeks back, so the bars of the aborted transaction
+are built again from the same input. A ``fenced`` owner (another producer took the
+partition's transactional id) stops touching the partition and waits for the
+revocation; if the group still assigns the partition to this process two session
+timeouts later (the fencer was a zombie, or the broker aborted a transaction that
+outlived ``transaction_timeout_ms``), it takes the partition back from its checkpoint.
 """
 
 from __future__ import annotations
@@ -30,148 +31,53 @@ import asyncio
 import contextlib
 import logging
 import time
-from collections.abc import Sequence
-from typing import TYPE_CHECKING, Any
+from collections.abc import AsyncIterator, Iterator, Sequence
+from typing import Any
 
+from barsmith.bus.checkpoints import CheckpointBus, PartitionTransaction
+from barsmith.bus.clients import is_bus_failure, is_fenced
 from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine
-from barsmith.errors import SinkError
+from barsmith.errors import StateError
+from barsmith.service.delivery import DeliveryContext
+from barsmith.service.partitions import PartitionState
 from barsmith.settings import Settings
 from barsmith.sinks.base import CheckpointedSink
-from barsmith.sources.kafka import security_kwargs
-from barsmith.sources.partitioning import partition_for
-
-if TYPE_CHECKING:
-    from barsmith.service.daemon import ServiceRunner
 
 log = logging.getLogger("barsmith.checkpoint")
 
-# The state topic keeps the latest checkpoint per key; small segments let the
-# log cleaner drop superseded checkpoints soon, so a restore reads little.
-STATE_TOPIC_CONFIGS = {
-    "cleanup.policy": "compact",
-    "segment.ms": "600000",
-    "segment.bytes": str(64 * 1024 * 1024),
-    "min.cleanable.dirty.ratio": "0.1",
-}
-_ABORT_TIMEOUT_S = 10.0
-
-
-def _caused_by(exc: BaseException, kinds: type[BaseException] | tuple[type[BaseException], ...]) -> bool:
-    """Whether ``exc`` or an exception it was raised from is one of ``kinds``."""
-    seen: BaseException | None = exc
-    while seen is not None:
-        if isinstance(seen, kinds):
-            return True
-        seen = seen.__cause__
-    return False
-
-
-def is_bus_failure(exc: BaseException) -> bool:
-    """A failure of the broker or the transaction (worth a rewind), not of our own code."""
-    from aiokafka.errors import KafkaError
-
-    return _caused_by(exc, (KafkaError, asyncio.TimeoutError, ConnectionError))
-
-
-def _is_fenced(exc: BaseException) -> bool:
-    from aiokafka.errors import ProducerFenced
-
-    return _caused_by(exc, ProducerFenced)
-
-
-class StateTopic:
-    """The compacted topic holding each input partition's latest checkpoint."""
-
-    def __init__(self, settings: Settings) -> None:
-        self.settings = settings
-        self.topic = settings.state_topic
-        self.partitions = 1
-        self._reader: Any = None
-
-    async def start(self) -> None:
-        from aiokafka import AIOKafkaConsumer
-
-        from barsmith.tools.bus import ensure_topic
-
-        kafka = self.settings.kafka
-        self.partitions = await ensure_topic(kafka, self.topic, kafka.state_partitions, STATE_TOPIC_CONFIGS)
-        self._reader = AIOKafkaConsumer(
-            bootstrap_servers=kafka.bootstrap_servers,
-            client_id=f"{kafka.client_id}-state",
-            enable_auto_commit=False,
-            isolation_level="read_committed",
-            max_partition_fetch_bytes=16 * 1024 * 1024,
-            fetch_max_bytes=64 * 1024 * 1024,
-            **security_kwargs(kafka),
-        )
-        await self._reader.start()
-
-    def partition_of(self, stream: str) -> int:
-        return partition_for(stream, self.partitions)
-
-    async def load(self, streams: Sequence[str]) -> dict[str, bytes]:
-        """The latest committed checkpoint of each of ``streams`` that has one."""
-        from aiokafka.structs import TopicPartition
-
-        wanted = set(streams)
-        tps = sorted({TopicPartition(self.topic, self.partition_of(s)) for s in streams})
-        if not tps:
-            return {}
-        reader = self._reader
-        reader.assign(tps)
-        await reader.seek_to_beginning(*tps)
-        # For a read_committed reader the end is the last stable offset: open
-        # transactions of earlier owners were aborted when our producers started.
-        ends = await reader.end_offsets(tps)
-        latest: dict[str, bytes] = {}
-        while True:
-            behind = [tp for tp in tps if await reader.position(tp) < ends[tp]]
-            if not behind:
-                return latest
-            polled = await reader.getmany(*behind, timeout_ms=1000)
-            for records in polled.values():
-                for record in records:
-                    key = record.key.decode("utf-8") if record.key else ""
-                    if key in wanted:
-                        if record.value is None:  # a tombstone: the state was deleted on purpose
-                            latest.pop(key, None)
-                        else:
-                            latest[key] = record.value
-
-    async def close(self) -> None:
-        if self._reader is not None:
-            await self._reader.stop()
-            self._reader = None
+RESTORING, LIVE, FAILED, FENCED = (
+    PartitionState.RESTORING,
+    PartitionState.LIVE,
+    PartitionState.FAILED,
+    PartitionState.FENCED,
+)
 
 
 class PartitionOwner:
-    """This process's hold on one input partition."""
+    """This process's hold on one input partition: its transaction and last checkpoint."""
 
     __slots__ = (
         "checkpoint",
         "dirty",
         "epoch",
-        "fenced",
         "fenced_at",
-        "healthy",
         "last_at",
-        "loaded",
         "offset",
         "partition",
-        "producer",
         "records_at",
         "restores",
         "sink_states",
         "stream",
         "topic",
+        "transaction",
     )
 
-    def __init__(self, stream: str, topic: str, partition: int, producer: Any) -> None:
+    def __init__(self, stream: str, topic: str, partition: int) -> None:
         self.stream = stream
         self.topic = topic
         self.partition = partition
-        self.producer = producer
+        self.transaction: PartitionTransaction | None = None  # None: to be opened
         self.checkpoint: bytes | None = None  # the last committed checkpoint
         self.offset: int | None = None  # its input offset (None: the partition's beginning)
         self.sink_states: dict[str, Any] = {}
@@ -179,79 +85,239 @@ class PartitionOwner:
         self.last_at = time.monotonic()
         self.records_at = 0
         self.dirty = False  # something went into the open transaction since the checkpoint
-        self.healthy = False  # False: the open transaction failed; recover before more input
-        self.fenced = False  # another producer took the transactional id
         self.fenced_at = 0.0
-        self.loaded = False  # the stored checkpoint has been read
         self.restores = 0  # how often state was (re)installed: a checkpoint in flight is then void
+
+    @property
+    def open_transaction(self) -> PartitionTransaction:
+        if self.transaction is None:
+            raise StateError(f"partition {self.stream} has no open transaction")
+        return self.transaction
 
 
 class ExactlyOnce:
-    """The owners of this process's partitions and their checkpoints (see module doc)."""
+    """The exactly-once :class:`~barsmith.service.delivery.DeliveryStrategy` (see module doc).
 
-    def __init__(self, runner: ServiceRunner, sinks: Sequence[CheckpointedSink]) -> None:
-        self.runner = runner
-        self.settings = runner.settings
-        self.sinks = tuple(sinks)
-        self.state = StateTopic(runner.settings)
-        self.owners: dict[str, PartitionOwner] = {}
-        self.metrics = runner.metrics
+    ``sinks`` are the checkpointed sinks themselves (the checkpoint protocol talks to
+    them); bars reach them through ``context.hand_over``.
+    """
+
+    def __init__(
+        self, settings: Settings, sinks: Sequence[CheckpointedSink], bus: CheckpointBus, context: DeliveryContext
+    ) -> None:
+        self._checkpoint_settings = settings.checkpoint
+        self._grace_s = 2 * settings.kafka.session_timeout_ms / 1000
+        self._specs = settings.bar_specs()
+        self._lateness_ns = settings.lateness_ns
+        self._limits = settings.stream_limits()
+        self._sinks = tuple(sinks)
+        self._bus = bus
+        self._context = context
+        self._partitions = context.partitions
+        self._positions = context.positions
+        self._metrics = context.metrics
+        self._owners: dict[str, PartitionOwner] = {}
 
     async def start(self) -> None:
-        await self.state.start()
+        await self._bus.start()
 
     async def close(self) -> None:
-        owners, self.owners = list(self.owners.values()), {}
-        await asyncio.gather(*(self._stop_producer(owner.producer) for owner in owners))
-        await self.state.close()
-
-    def producer_for(self, stream: str) -> Any:
-        return self.owners[stream].producer
+        owners, self._owners = list(self._owners.values()), {}
+        await asyncio.gather(*(self._drop_transaction(owner) for owner in owners))
+        await self._bus.close()
 
     def accepts(self, stream: str) -> bool:
-        """Whether input of ``stream`` may be processed now."""
-        owner = self.owners.get(stream)
-        return owner is not None and owner.healthy
+        """Input of ``stream`` may be processed only while it is live."""
+        return self._partitions.is_live(stream)
+
+    async def deliver(self, stream: str, engine: Engine) -> None:
+        """Bars go out inside the partition's open transaction; a bus failure rewinds it."""
+        owner = self._owner(stream)
+        async with self._rewind_on_bus_failure(owner):
+            await self._context.hand_over(stream, engine)
+            owner.dirty = True
+
+    async def after_batch(self, stream: str) -> None:
+        owner = self._owners.get(stream)
+        if owner is None or not self._partitions.is_live(stream):
+            return
+        owner.dirty = True
+        engine = self._partitions.engines[stream]
+        if engine.stats.records - owner.records_at >= self._checkpoint_settings.every_messages:
+            await self.checkpoint(stream)
 
     # -- assignment and revocation ----------------------------------------------------
 
     async def assign(self, streams: Sequence[str]) -> None:
         """Take over ``streams``: fence earlier owners, restore checkpoints, seek."""
-        source = self.runner.kafka_source
-        new = [s for s in streams if s not in self.owners]
+        new = [s for s in streams if s not in self._owners]
         for stream in new:
-            part = source.partitions[stream]
-            self.owners[stream] = PartitionOwner(stream, part.topic, part.partition, None)
-        # Start all producers first (in parallel): that fences the earlier owners and
-        # aborts their open transactions, so the state topic is stable when read.
-        results = await asyncio.gather(*(self._start_producer(self.owners[s]) for s in new), return_exceptions=True)
-        for stream, result in zip(new, results, strict=True):
-            if isinstance(result, BaseException):
-                log.warning("%s: cannot start its producer yet (%s); retrying", stream, result)
-            else:
-                self.owners[stream].producer = result
-        ready = [s for s in new if self.owners[s].producer is not None]
+            position = self._positions.partitions[stream]
+            self._owners[stream] = PartitionOwner(stream, position.topic, position.partition)
+            self._partitions.hold(stream, RESTORING)
+        await self._recover([self._owners[s] for s in new])
+
+    async def revoke(self, streams: Sequence[str]) -> None:
+        """Let go of ``streams``: checkpoint and commit what they did, then forget them."""
+        mine = [s for s in streams if s in self._owners]
+        await asyncio.gather(*(self.checkpoint(s, final=True) for s in mine if self._partitions.is_live(s)))
+        for stream in mine:
+            for sink in self._sinks:
+                sink.release(stream)
+        await asyncio.gather(*(self._drop_transaction(self._owners.pop(s)) for s in mine))
+        for stream in streams:
+            self._partitions.release(stream)
+
+    # -- checkpoints --------------------------------------------------------------------
+
+    async def housekeeping(self, now: float) -> None:
+        """Take fenced partitions back after the grace; recover restoring and failed ones
+        (a bus failure is logged and retried next time); checkpoint those due."""
+        for stream in self._partitions.in_state(FENCED):
+            owner = self._owners[stream]
+            if now - owner.fenced_at >= self._grace_s:
+                self._partitions.move(
+                    stream,
+                    FAILED,
+                    "still assigned here %.0f s after being fenced: taking it back",
+                    self._grace_s,
+                    level=logging.WARNING,
+                )
+                await self._drop_transaction(owner)
+        recovering = self._partitions.in_state(RESTORING, FAILED)
+        if recovering:
+            await self._recover([self._owners[s] for s in recovering])
+        interval = self._checkpoint_settings.interval_s
+        due = [s for s in self._partitions.in_state(LIVE) if now - self._owners[s].last_at >= interval]
+        # Partitions are independent (own transaction, engine, sink buffers): their
+        # transactions' round trips overlap instead of adding up.
+        await asyncio.gather(*(self.checkpoint(stream) for stream in due))
+
+    async def final_flush(self, draining: bool) -> None:
+        """A final checkpoint of every live partition (open bars stay open in it, to be
+        continued by the next run; ``draining`` first closes them, marked incomplete)."""
+        live = self._partitions.in_state(LIVE)
+        if draining:  # end of input, as replay: close what is open
+            for stream in live:
+                self._partitions.engines[stream].finish()
+        await asyncio.gather(*(self.checkpoint(stream, final=True) for stream in live))
+        await self.close()
+
+    async def checkpoint(self, stream: str, final: bool = False) -> bool:
+        """Commit ``stream``'s bars, checkpoint and offset in one transaction.
+        Returns whether it committed (False: nothing new, or it failed and rewound)."""
+        owner = self._owner(stream)
+        if not self._partitions.is_live(stream):
+            raise StateError(f"partition {stream} is {self._partitions.state(stream)}: only a live one checkpoints")
+        engine = self._partitions.engines[stream]
+        position = self._positions.partitions.get(stream)
+        offset = position.next_offset if position is not None and position.next_offset is not None else owner.offset
+        owner.last_at = time.monotonic()
+        # Nothing new since the last checkpoint: skip, except on the way out, where
+        # the final checkpoint also writes what the sinks still carry.
+        if offset is None or (offset == owner.offset and not owner.dirty and not final):
+            return False
+        started = time.perf_counter()
+        restores = owner.restores
+        await self.deliver(stream, engine)
+        if owner.restores != restores or not self._partitions.is_live(stream):
+            return False  # the delivery failed: the partition rewound (or waits to)
+        committed = False
+        async with self._rewind_on_bus_failure(owner):
+            sink_states = {sink.name: await sink.prepare(stream, offset, final) for sink in self._sinks}
+            meta = {"offset": offset, "sinks": sink_states, "epoch": owner.epoch + 1, "written_ns": time.time_ns()}
+            data = encode_checkpoint(engine, meta)
+            await owner.open_transaction.commit(data, offset)
+            committed = True
+        if not committed:
+            return False
+        self._metrics.transactions.labels(outcome="committed").inc()
+        self._metrics.checkpoint_bytes.observe(len(data))
+        self._metrics.checkpoint_seconds.observe(time.perf_counter() - started)
+        owner.checkpoint, owner.offset, owner.sink_states = data, offset, sink_states
+        owner.epoch += 1
+        owner.records_at = engine.stats.records
+        owner.dirty = False
+        for sink in self._sinks:
+            await sink.committed(stream, sink_states[sink.name])
+        if not final:
+            async with self._rewind_on_bus_failure(owner):
+                await owner.open_transaction.begin()
+        return True
+
+    async def fail(self, owner: PartitionOwner, exc: BaseException) -> None:
+        """The open transaction of a live partition failed: abort it and rewind to the
+        checkpoint (fenced: stand back)."""
+        stream = owner.stream
+        fenced = is_fenced(exc)
+        if fenced:
+            owner.fenced_at = time.monotonic()
+            self._partitions.move(
+                stream,
+                FENCED,
+                "another producer took this partition's transactional id (fenced); standing back",
+                level=logging.ERROR,
+            )
+        else:
+            self._partitions.move(
+                stream,
+                FAILED,
+                "transaction failed (%s: %s); rewinding to the checkpoint at offset %s",
+                type(exc).__name__,
+                exc,
+                owner.offset,
+                level=logging.WARNING,
+            )
+        self._positions.pause(stream)  # no point fetching what the rewind re-reads
+        self._metrics.transactions.labels(outcome="aborted").inc()
+        if fenced:
+            return  # wait for the revocation (or take it back: housekeeping)
         try:
-            stored = await self.state.load(ready)
-        except Exception as exc:
-            if not is_bus_failure(exc):
-                raise
-            log.warning("cannot read checkpoints yet (%s); retrying", exc)
-            return
-        for stream in ready:
-            owner = self.owners[stream]
-            group_offset = await self._adopt(owner, stored.get(stream))
-            try:
-                await self._restore(owner, "assignment", group_offset)
-            except Exception as exc:
-                if not is_bus_failure(exc):
-                    raise
-                log.warning("%s: cannot restore yet (%s); retrying", stream, exc)
+            await owner.open_transaction.abort()
+        except Exception:
+            # The producer cannot abort (fatal state or no broker): replace it. Starting
+            # a producer with the same transactional id aborts the transaction for us.
+            await self._drop_transaction(owner)
+        await self._recover([owner])  # a bus failure is logged and retried by housekeeping
+
+    # -- recovery -----------------------------------------------------------------------
+
+    async def _recover(self, owners: Sequence[PartitionOwner]) -> None:
+        """Bring restoring and failed partitions back to live. Their transactions open
+        first, in parallel: that fences the earlier owners and aborts their open
+        transactions, so the stored checkpoints are stable when read (one read for all
+        those being assigned). A bus failure leaves a partition as it is, for
+        housekeeping to retry."""
+        await asyncio.gather(*(self._open_transaction(owner) for owner in owners if owner.transaction is None))
+        ready = [owner for owner in owners if owner.transaction is not None]
+        assigning = [owner.stream for owner in ready if self._partitions.state(owner.stream) is RESTORING]
+        stored: dict[str, bytes] | None = {}
+        if assigning:
+            stored = None
+            with self._retry_later("cannot read checkpoints"):
+                stored = await self._bus.load(assigning)
+        for owner in ready:
+            state = self._partitions.state(owner.stream)
+            with self._retry_later(f"{owner.stream} ({state}): cannot restore"):
+                if state is FAILED:
+                    await self._restore(owner, "rewind")
+                elif stored is not None:
+                    group_offset = await self._adopt(owner, stored.get(owner.stream))
+                    await self._restore(owner, "assignment", group_offset)
+
+    async def _open_transaction(self, owner: PartitionOwner) -> None:
+        with self._retry_later(f"{owner.stream}: cannot start its producer"):
+            owner.transaction = await self._bus.open(owner.stream, owner.topic, owner.partition)
+
+    async def _drop_transaction(self, owner: PartitionOwner) -> None:
+        transaction, owner.transaction = owner.transaction, None
+        if transaction is not None:
+            await transaction.stop()
 
     async def _adopt(self, owner: PartitionOwner, data: bytes | None) -> int | None:
         """Take ``data`` (the partition's stored checkpoint, if any) as the owner's last;
         returns the consumer group's committed offset of the partition."""
-        committed = await self.runner.kafka_source.committed_offset(owner.stream)
+        committed = await self._positions.committed_offset(owner.stream)
         if data is None:
             if committed is not None:
                 log.warning(
@@ -262,187 +328,46 @@ class ExactlyOnce:
                 )
             owner.offset = committed
         owner.checkpoint = data
-        owner.loaded = True
         return committed
 
-    async def revoke(self, streams: Sequence[str]) -> None:
-        """Let go of ``streams``: checkpoint and commit what they did, then forget them."""
-        mine = [s for s in streams if s in self.owners]
-        await asyncio.gather(*(self.checkpoint(s, final=True) for s in mine if self.owners[s].healthy))
-        for stream in mine:
-            for sink in self.sinks:
-                sink.release(stream)
-        await asyncio.gather(*(self._stop_producer(self.owners.pop(s).producer) for s in mine))
-
-    # -- checkpoints --------------------------------------------------------------------
-
-    async def after_batch(self, stream: str) -> None:
-        owner = self.owners.get(stream)
-        engine = self.runner.engines.get(stream)
-        if owner is None or engine is None or not owner.healthy:
-            return
-        owner.dirty = True
-        if engine.stats.records - owner.records_at >= self.settings.checkpoint.every_messages:
-            await self.checkpoint(stream)
-
-    async def housekeeping(self, now: float) -> None:
-        """Checkpoint partitions that are due; retry the recovery of failed ones."""
-        interval = self.settings.checkpoint.interval_s
-        due = []
-        grace_s = 2 * self.settings.kafka.session_timeout_ms / 1000
-        for stream, owner in list(self.owners.items()):  # the caller holds the engine lock
-            if owner.fenced:
-                if now - owner.fenced_at >= grace_s:
-                    log.warning("%s: still assigned here %.0f s after being fenced: taking it back", stream, grace_s)
-                    owner.fenced = False
-                    await self._stop_producer(owner.producer)
-                    owner.producer = None
-                    await self._recover(owner)
-                continue
-            if not owner.healthy:
-                await self._recover(owner)  # a bus failure is logged and retried next time
-            elif now - owner.last_at >= interval:
-                due.append(stream)
-        # Partitions are independent (own producer, engine, sink buffers): their
-        # transactions' round trips overlap instead of adding up.
-        await asyncio.gather(*(self.checkpoint(stream) for stream in due))
-
-    async def checkpoint_all(self, final: bool) -> None:
-        streams = [stream for stream, owner in self.owners.items() if owner.healthy]
-        await asyncio.gather(*(self.checkpoint(stream, final=final) for stream in streams))
-
-    async def checkpoint(self, stream: str, final: bool = False) -> bool:
-        """Commit ``stream``'s bars, checkpoint and offset in one transaction.
-        Returns whether it committed (False: nothing new, or it failed and rewound)."""
-        owner = self.owners[stream]
-        engine = self.runner.engines[stream]
-        part = self.runner.kafka_source.partitions.get(stream)
-        offset = part.next_offset if part is not None and part.next_offset is not None else owner.offset
-        owner.last_at = time.monotonic()
-        # Nothing new since the last checkpoint: skip, except on the way out, where
-        # the final checkpoint also writes what the sinks still carry.
-        if offset is None or (offset == owner.offset and not owner.dirty and not final):
-            return False
-        from aiokafka.structs import TopicPartition
-
-        started = time.perf_counter()
-        restores = owner.restores
-        try:
-            await self.runner.deliver(stream, engine)
-            if not owner.healthy or owner.restores != restores:  # delivery failed: the stream rewound
-                return False
-            sink_states = {sink.name: await sink.prepare(stream, offset, final) for sink in self.sinks}
-            meta = {"offset": offset, "sinks": sink_states, "epoch": owner.epoch + 1, "written_ns": time.time_ns()}
-            data = encode_checkpoint(engine, meta)
-            producer = owner.producer
-            await producer.send(
-                self.state.topic, value=data, key=stream.encode("utf-8"), partition=self.state.partition_of(stream)
-            )
-            await producer.send_offsets_to_transaction(
-                {TopicPartition(owner.topic, owner.partition): offset}, self.settings.kafka.group_id
-            )
-            await producer.commit_transaction()
-        except Exception as exc:
-            if not is_bus_failure(exc):
-                raise
-            await self.fail(stream, exc)
-            return False
-        self.metrics.transactions.labels(outcome="committed").inc()
-        self.metrics.checkpoint_bytes.observe(len(data))
-        self.metrics.checkpoint_seconds.observe(time.perf_counter() - started)
-        owner.checkpoint, owner.offset, owner.sink_states = data, offset, sink_states
-        owner.epoch += 1
-        owner.records_at = engine.stats.records
-        owner.dirty = False
-        for sink in self.sinks:
-            await sink.committed(stream, sink_states[sink.name])
-        if not final:
-            await owner.producer.begin_transaction()
-        return True
-
-    async def fail(self, stream: str, exc: BaseException) -> None:
-        """The open transaction of ``stream`` failed: abort it and rewind to the checkpoint."""
-        owner = self.owners[stream]
-        owner.healthy = False
-        self.runner.kafka_source.pause(stream)  # no point fetching what the rewind re-reads
-        self.metrics.transactions.labels(outcome="aborted").inc()
-        if _is_fenced(exc):
-            owner.fenced, owner.fenced_at = True, time.monotonic()
-            log.error("%s: another producer took this partition's transactional id (fenced); standing back", stream)
-            return
-        log.warning(
-            "%s: transaction failed (%s: %s); rewinding to the checkpoint at offset %s",
-            stream,
-            type(exc).__name__,
-            exc,
-            owner.offset,
-        )
-        try:
-            await asyncio.wait_for(owner.producer.abort_transaction(), _ABORT_TIMEOUT_S)
-        except Exception:
-            # The producer cannot abort (fatal state or no broker): replace it. Starting
-            # a producer with the same transactional id aborts the transaction for us.
-            await self._stop_producer(owner.producer)
-            owner.producer = None
-        await self._recover(owner)  # a bus failure is logged and retried by housekeeping
-
-    async def _recover(self, owner: PartitionOwner) -> None:
-        try:
-            if owner.producer is None:
-                owner.producer = await self._start_producer(owner)
-            reason, group_offset = "rewind", None
-            if not owner.loaded:
-                group_offset = await self._adopt(owner, (await self.state.load([owner.stream])).get(owner.stream))
-                reason = "assignment"
-            await self._restore(owner, reason, group_offset)
-        except Exception as exc:
-            if not is_bus_failure(exc):
-                raise
-            log.warning("%s: cannot recover yet (%s); retrying", owner.stream, exc)
-
     async def _restore(self, owner: PartitionOwner, reason: str, group_offset: int | None = None) -> None:
-        """Install the owner's last committed checkpoint (or empty state) and seek to it.
-        ``group_offset``: on assignment, the group's committed offset (for the count of
-        records consumed again)."""
-        runner = self.runner
-        source = runner.kafka_source
+        """Install the owner's last committed checkpoint (or empty state), seek to it, go
+        live. ``group_offset``: on assignment, the group's committed offset (for the
+        count of records consumed again)."""
         stream = owner.stream
-        part = source.partitions[stream]
-        position = part.next_offset
+        position = self._positions.partitions[stream].next_offset
         if owner.checkpoint is not None:
-            engine, meta = decode_checkpoint(owner.checkpoint, runner.specs, runner.lateness_ns)
+            engine, meta = decode_checkpoint(owner.checkpoint, self._specs, self._lateness_ns, self._limits)
             owner.offset = int(meta["offset"])
             owner.sink_states = dict(meta.get("sinks", {}))
             owner.epoch = int(meta.get("epoch", 0))
         else:
-            engine = Engine(runner.specs, runner.lateness_ns)
+            engine = Engine(self._specs, self._lateness_ns, self._limits)
             owner.sink_states = {}
-        for sink in self.sinks:
+        for sink in self._sinks:
             await sink.restore(stream, owner.sink_states.get(sink.name), owner.offset or 0)
-        if reason == "assignment":
-            runner.set_baseline(stream, engine.stats)
-        runner.engines[stream] = engine
-        await source.seek(stream, owner.offset)
-        source.resume(stream)
+        self._partitions.install(stream, engine, restored_counts=reason == "assignment")
+        await self._positions.seek(stream, owner.offset)
+        self._positions.resume(stream)
         owner.records_at = engine.stats.records
         owner.dirty = False
         owner.last_at = time.monotonic()
         owner.restores += 1
-        await owner.producer.begin_transaction()
-        owner.healthy = True
-        self.metrics.restores.labels(reason=reason).inc()
+        await owner.open_transaction.begin()
+        self._metrics.restores.labels(reason=reason).inc()
         done = position if reason == "rewind" else group_offset
         rewound = max(0, (done or 0) - (owner.offset or 0))
-        self.metrics.offsets_rewound.inc(rewound)
+        self._metrics.offsets_rewound.inc(rewound)
         # No end-offset lookup for the log line: at the end of a partition it queues
         # behind the consumer's long-poll fetch (up to fetch_max_wait_ms, 0.5 s) on the
         # same connection, and eight of those in one assignment callback outlasted the
         # session timeout, so the group kept evicting the member (a rebalance loop).
         where = f"offset {owner.offset:,}" if owner.offset is not None else "the beginning"
         origin = f"its checkpoint (epoch {owner.epoch})" if owner.checkpoint is not None else "empty state"
-        log.info(
-            "%s: restored from %s on %s at %s: %d books, %d open bars; %d records rewound",
+        self._partitions.move(
             stream,
+            LIVE,
+            "restored from %s on %s at %s: %d books, %d open bars; %d records rewound",
             origin,
             reason,
             where,
@@ -451,34 +376,32 @@ class ExactlyOnce:
             rewound,
         )
 
-    # -- producers ------------------------------------------------------------------------
+    # -- failures -------------------------------------------------------------------------
 
-    async def _start_producer(self, owner: PartitionOwner) -> Any:
-        from aiokafka import AIOKafkaProducer
-        from aiokafka.errors import KafkaError
+    def _owner(self, stream: str) -> PartitionOwner:
+        owner = self._owners.get(stream)
+        if owner is None:
+            raise StateError(f"partition {stream} has no owner here (not assigned, or revoked)")
+        return owner
 
-        kafka = self.settings.kafka
-        compression = None if kafka.output_compression == "none" else kafka.output_compression
-        producer = AIOKafkaProducer(
-            bootstrap_servers=kafka.bootstrap_servers,
-            client_id=f"{kafka.client_id}-{owner.topic}-{owner.partition}",
-            transactional_id=f"{kafka.group_id}.{owner.topic}.{owner.partition}",
-            transaction_timeout_ms=kafka.transaction_timeout_ms,
-            enable_idempotence=True,
-            acks="all",
-            compression_type=compression,
-            linger_ms=kafka.output_linger_ms,
-            **security_kwargs(kafka),
-        )
+    @contextlib.asynccontextmanager
+    async def _rewind_on_bus_failure(self, owner: PartitionOwner) -> AsyncIterator[None]:
+        """A bus failure inside fails the partition's transaction (and rewinds it);
+        anything else is a bug and propagates."""
         try:
-            await producer.start()  # init_transactions: fences the partition's previous owner
-        except KafkaError as exc:
-            await self._stop_producer(producer)
-            raise SinkError(f"cannot start the transactional producer for {owner.stream}: {exc}") from exc
-        return producer
+            yield
+        except Exception as exc:
+            if not is_bus_failure(exc):
+                raise
+            await self.fail(owner, exc)
 
-    async def _stop_producer(self, producer: Any) -> None:
-        if producer is None:
-            return
-        with contextlib.suppress(Exception):
-            await asyncio.wait_for(producer.stop(), _ABORT_TIMEOUT_S)
+    @contextlib.contextmanager
+    def _retry_later(self, what: str) -> Iterator[None]:
+        """A bus failure inside is logged and left for housekeeping to retry; anything
+        else (an unreadable checkpoint, a bug) propagates."""
+        try:
+            yield
+        except Exception as exc:
+            if not is_bus_failure(exc):
+                raise
+            log.warning("%s yet (%s); retrying", what, exc)

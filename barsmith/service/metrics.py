@@ -7,14 +7,17 @@ collector), so the per-tick path pays nothing for them.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Iterable, Iterator
+import time
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from typing import Any
 
 from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
+from barsmith.bars.bar import Bar
 from barsmith.engine import Engine, EngineStats
+from barsmith.service.partitions import PartitionState
 
 # Close-to-publish delays: sub-millisecond up to tens of seconds.
 _DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
@@ -23,17 +26,20 @@ _EVENT_BUCKETS = (0.1, 0.25, 0.5, 1.0, 2.0, 3.0, 5.0, 10.0, 30.0, 60.0, 120.0, 3
 
 
 class PartitionView:
-    """What the collector needs from the runner, as plain callables."""
+    """What the collector reads at scrape time, as plain callables: this process's
+    counters, the engines by stream, each partition's lag, partitions by state."""
 
     def __init__(
         self,
         totals: Callable[[], EngineStats],
-        engines: Callable[[], dict[str, Engine]],
-        lags: Callable[[], dict[str, tuple[str, int, int | None]]],
+        engines: Callable[[], Mapping[str, Engine]],
+        lags: Callable[[], Mapping[str, int | None]],
+        states: Callable[[], Mapping[PartitionState, int]] = dict,
     ) -> None:
         self.totals = totals
         self.engines = engines
         self.lags = lags
+        self.states = states
 
 
 class _EngineCollector(Collector):
@@ -63,10 +69,15 @@ class _EngineCollector(Collector):
         lag = GaugeMetricFamily(
             "barsmith_consumer_lag_messages", "Records behind the partition's high watermark", labels=["partition"]
         )
-        for name, (_topic, _partition, value) in sorted(self._view.lags().items()):
+        for name, value in sorted(self._view.lags().items()):
             if value is not None:
                 lag.add_metric([name], value)
         yield lag
+        partitions = GaugeMetricFamily("barsmith_partitions", "Held input partitions by state", labels=["state"])
+        by_state = dict.fromkeys(PartitionState, 0) | dict(self._view.states())
+        for state, count in by_state.items():
+            partitions.add_metric([state.value], count)
+        yield partitions
         watermark = GaugeMetricFamily(
             "barsmith_watermark_seconds",
             "Largest accepted event time, per partition (Unix seconds)",
@@ -145,6 +156,11 @@ class ServiceMetrics:
             self.transactions.labels(outcome=outcome)
         for reason in ("assignment", "rewind"):
             self.restores.labels(reason=reason)
+
+    def observe_publish(self, bar: Bar, delay_s: float) -> None:
+        """The broker acknowledged ``bar``, ``delay_s`` after it was handed to the bus sink."""
+        self.publish_delay.observe(delay_s)
+        self.event_to_publish.observe(max(0.0, time.time() - bar.end / 1e9))
 
     def count_bars(self, sink: str, bars: Iterable[Any]) -> None:
         counts: dict[str, int] = {}

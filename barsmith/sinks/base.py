@@ -6,15 +6,19 @@ from collections.abc import Sequence
 from typing import Any, Protocol
 
 from barsmith.bars.bar import Bar
+from barsmith.errors import SinkError
 from barsmith.ingest.rejects import Reject
 
 
 class BarSink(Protocol):
-    """A plug-in bar sink: ``publish`` may buffer; ``flush`` makes everything published
-    so far durable; ``close`` flushes and releases resources. ``stream`` names the
-    ordered input stream (engine) the bars came from."""
+    """A plug-in bar sink: ``start`` opens connections (before the first publish);
+    ``publish`` may buffer; ``flush`` makes everything published so far durable;
+    ``close`` flushes and releases resources. ``stream`` names the ordered input
+    stream (engine) the bars came from."""
 
     name: str
+
+    async def start(self) -> None: ...
 
     async def publish(self, stream: str, bars: Sequence[Bar]) -> None: ...
 
@@ -57,6 +61,9 @@ class MemorySink:
         self.flushes = 0
         self.closed = False
 
+    async def start(self) -> None:
+        return None
+
     async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         self.bars.extend(bars)
 
@@ -68,3 +75,53 @@ class MemorySink:
 
     async def close(self) -> None:
         self.closed = True
+
+
+class MemoryCheckpointedSink(MemorySink):
+    """A test double of :class:`CheckpointedSink`: a partition's bars (and rejects)
+    become visible in ``bars`` (``rejects``) only when a checkpoint commits them, as on
+    the bus with ``read_committed``; a restore or a release forgets what was not.
+    ``fail_next_publish(exc)`` makes the next publish fail as a send to a broker that
+    went away does (a :class:`~barsmith.errors.SinkError` raised from ``exc``)."""
+
+    name = "memory-checkpointed"
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._pending: dict[str, tuple[list[Bar], list[Reject]]] = {}
+        self._failures: list[BaseException] = []
+
+    def fail_next_publish(self, exc: BaseException) -> None:
+        self._failures.append(exc)
+
+    async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
+        if self._failures:
+            failure = self._failures.pop(0)
+            raise SinkError(f"cannot publish bars of {stream}: {failure!r}") from failure
+        self._for(stream)[0].extend(bars)
+
+    async def write(self, rejects: Sequence[Reject]) -> None:
+        for reject in rejects:
+            self._for(reject.source)[1].append(reject)
+
+    async def prepare(self, stream: str, offset: int, final: bool) -> Any:
+        bars, rejects = self._for(stream)
+        return {"bars": len(bars), "rejects": len(rejects)}
+
+    async def committed(self, stream: str, state: Any) -> None:
+        bars, rejects = self._for(stream)
+        self.bars.extend(bars[: state["bars"]])
+        self.rejects.extend(rejects[: state["rejects"]])
+        del bars[: state["bars"]], rejects[: state["rejects"]]
+
+    async def restore(self, stream: str, state: Any, offset: int) -> None:
+        self._pending.pop(stream, None)
+
+    def release(self, stream: str) -> None:
+        self._pending.pop(stream, None)
+
+    def _for(self, stream: str) -> tuple[list[Bar], list[Reject]]:
+        pending = self._pending.get(stream)
+        if pending is None:
+            pending = self._pending[stream] = ([], [])
+        return pending

@@ -6,7 +6,8 @@ is idempotent (no duplicates from its own retries) and compresses batches.
 
 Under exactly-once delivery the sink owns no producer: each input partition's bars
 go through that partition's transactional producer (``producer_for(stream)``) and
-become visible to ``read_committed`` readers when its checkpoint commits.
+become visible to ``read_committed`` readers when its checkpoint commits. Either
+way the sink is built with its callbacks (see ``barsmith.service.app.build_service``).
 """
 
 from __future__ import annotations
@@ -21,10 +22,10 @@ from typing import Any
 import msgpack
 
 from barsmith.bars.bar import Bar
+from barsmith.bus.clients import bar_producer, start_client
+from barsmith.bus.topics import ensure_topic, partition_for
 from barsmith.errors import SinkError
 from barsmith.settings import KafkaSettings
-from barsmith.sources.kafka import security_kwargs
-from barsmith.sources.partitioning import partition_for
 
 log = logging.getLogger("barsmith.bus")
 
@@ -44,7 +45,12 @@ def decode_bar(value: bytes) -> dict[str, Any]:
 
 
 class KafkaBarSink:
-    """Publishes bars to ``topic``; ``flush()`` waits until the broker has them all."""
+    """Publishes bars to ``topic``; ``flush()`` waits until the broker has them all.
+
+    ``on_published(bar, delay_s)`` hears of every bar the broker acknowledged, with the
+    time since it was handed over; ``producer_for(stream)`` (exactly-once) gives the
+    producer of the stream's open transaction.
+    """
 
     name = "bus"
 
@@ -60,43 +66,30 @@ class KafkaBarSink:
         self._producer: Any = None
         self._inflight: set[asyncio.Future[Any]] = set()
         self._error: str | None = None
-        self.on_published = on_published
+        self._on_published = on_published
         self.published = 0
-        self.producer_for = producer_for
+        self._producer_for = producer_for
         self._stream_inflight: dict[str, set[asyncio.Future[Any]]] = {}
         self._stream_failures: dict[str, BaseException] = {}
 
     async def start(self) -> None:
-        if self.producer_for is not None:
-            return  # the partitions' transactional producers are started by their owner
-        from aiokafka import AIOKafkaProducer
-        from aiokafka.errors import KafkaError
-
+        """Create the topic if missing (``output_partitions``); at-least-once, start the producer."""
         kafka = self._kafka
-        compression = None if kafka.output_compression == "none" else kafka.output_compression
-        self._producer = AIOKafkaProducer(
-            bootstrap_servers=kafka.bootstrap_servers,
-            client_id=f"{kafka.client_id}-bars",
-            enable_idempotence=True,
-            acks="all",
-            compression_type=compression,
-            linger_ms=kafka.output_linger_ms,
-            **security_kwargs(kafka),
-        )
-        try:
-            await self._producer.start()
-        except KafkaError as exc:
-            await self._producer.stop()
-            raise SinkError(f"cannot start the bar producer: {exc}") from exc
+        await ensure_topic(kafka, self.topic, kafka.output_partitions)
+        if self._producer_for is not None:
+            return  # the partitions' transactional producers are started by their owners
+        producer = bar_producer(kafka, f"{kafka.client_id}-bars")
+        await start_client(producer, kafka, "bar producer", SinkError)
+        self._producer = producer
 
     async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         self._raise_delivery_error()
-        if self.producer_for is not None:
-            producer = self.producer_for(stream)
+        if self._producer_for is not None:
+            producer = self._producer_for(stream)
         else:
-            if self._producer is None:
-                await self.start()
             producer = self._producer
+            if producer is None:
+                raise SinkError(f"the bar producer for {self.topic} was not started")
         closed_at = time.monotonic()
         try:
             # One record batch per output partition instead of one send per bar: the
@@ -133,27 +126,27 @@ class KafkaBarSink:
         batch.close()
         future = await producer.send_batch(batch, self.topic, partition=partition)
         self._inflight.add(future)
-        if self.producer_for is not None:
+        if self._producer_for is not None:
             self._stream_inflight.setdefault(stream, set()).add(future)
         future.add_done_callback(functools.partial(self._delivered, stream, bars, closed_at))
 
     def _delivered(self, stream: str, bars: list[Bar], closed_at: float, future: asyncio.Future[Any]) -> None:
         self._inflight.discard(future)
-        if self.producer_for is not None:
+        if self._producer_for is not None:
             self._stream_inflight.get(stream, set()).discard(future)
         failure = asyncio.CancelledError("delivery cancelled") if future.cancelled() else future.exception()
         if failure is not None:
-            if self.producer_for is not None:
+            if self._producer_for is not None:
                 # In a transaction: the partition's next checkpoint must not commit.
                 self._stream_failures.setdefault(stream, failure)
             else:
                 self._error = self._error or str(failure)
             return
         self.published += len(bars)
-        if self.on_published is not None:
+        if self._on_published is not None:
             delay_s = time.monotonic() - closed_at
             for bar in bars:
-                self.on_published(bar, delay_s)
+                self._on_published(bar, delay_s)
 
     def _raise_delivery_error(self) -> None:
         if self._error is not None:

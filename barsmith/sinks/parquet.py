@@ -149,6 +149,9 @@ class ParquetBarSink:
         self._counter: dict[str, int] = dict.fromkeys(self._stems, 0)
         self.files_written: list[Path] = []
 
+    async def start(self) -> None:
+        return None
+
     async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         for bar in bars:
             self._pending[bar.spec].append(bar)
@@ -298,6 +301,9 @@ class ParquetPartSink:
         self.files_written: list[Path] = []
 
     # -- BarSink / RejectSink --------------------------------------------------------
+
+    async def start(self) -> None:
+        return None
 
     async def publish(self, stream: str, bars: Sequence[Bar]) -> None:
         self._buffer(stream).bars.extend(bars)

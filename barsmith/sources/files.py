@@ -10,12 +10,12 @@ from collections.abc import AsyncIterator, Sequence
 from pathlib import Path
 from typing import IO, Any, Final, cast
 
+from barsmith.bus.topics import partition_for, symbol_of
 from barsmith.errors import ConfigError, InputError
 from barsmith.ingest.framing import FrameReader, FramingReject
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
 from barsmith.sources.base import RecordBatch
-from barsmith.sources.partitioning import partition_for, symbol_of
 
 GZIP_MAGIC: Final = b"\x1f\x8b"
 # Small batches keep freshly decoded records in cache while the engine uses them.
@@ -55,7 +55,7 @@ class FileSource:
         self, paths: Sequence[str | os.PathLike[str]], batch_records: int = BATCH_RECORDS, partitions: int = 1
     ) -> None:
         """``partitions > 1`` splits the stream by symbol the way the bus does (see
-        :mod:`barsmith.sources.partitioning`): one ordered stream per partition."""
+        :func:`barsmith.bus.topics.partition_for`): one ordered stream per partition."""
         if partitions < 1:
             raise ConfigError(f"partitions must be >= 1, got {partitions}")
         self.paths = check_input_paths(paths)

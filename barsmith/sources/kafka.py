@@ -2,8 +2,8 @@
 
 A record's value is one tick map or a msgpack array of tick maps; its key, when
 present, is the symbol. Each partition is processed in order by its own engine
-(stream name ``topic[partition]``). Offsets are committed by the runner, after the
-sinks have flushed what those records produced.
+(stream name ``topic[partition]``). Offsets are committed by the delivery strategy,
+after the sinks have flushed what those records produced, or with the checkpoints.
 """
 
 from __future__ import annotations
@@ -16,41 +16,25 @@ from typing import Any
 
 import msgpack
 
-from barsmith.errors import ConfigError, InputError
+from barsmith.bus.clients import new_consumer, start_client
+from barsmith.bus.topics import stream_name
+from barsmith.errors import StateError
 from barsmith.ingest.fastwire import new_scanner
 from barsmith.ingest.framing import new_unpacker
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
 from barsmith.settings import KafkaSettings
-from barsmith.sources.base import RecordBatch
+from barsmith.sources.base import (
+    PartitionListener,
+    PartitionPosition,
+    RecordBatch,
+    current_position,
+    uncommitted,
+)
 
 log = logging.getLogger("barsmith.kafka")
 
 _DECODE_ERRORS = (msgpack.exceptions.UnpackException, ValueError, TypeError)
-
-
-def stream_name(topic: str, partition: int) -> str:
-    return f"{topic}[{partition}]"
-
-
-def security_kwargs(kafka: KafkaSettings) -> dict[str, Any]:
-    """aiokafka connection arguments for the security settings (shared by all clients)."""
-    sec = kafka.security
-    kwargs: dict[str, Any] = {"security_protocol": sec.protocol}
-    if sec.protocol.endswith("SSL"):
-        from aiokafka.helpers import create_ssl_context
-
-        kwargs["ssl_context"] = create_ssl_context(
-            cafile=str(sec.ssl_cafile) if sec.ssl_cafile else None,
-            certfile=str(sec.ssl_certfile) if sec.ssl_certfile else None,
-            keyfile=str(sec.ssl_keyfile) if sec.ssl_keyfile else None,
-            password=sec.ssl_key_password.get_secret_value() if sec.ssl_key_password else None,
-        )
-    if sec.protocol.startswith("SASL"):
-        kwargs["sasl_mechanism"] = sec.sasl_mechanism
-        kwargs["sasl_plain_username"] = sec.sasl_username
-        kwargs["sasl_plain_password"] = sec.sasl_password.get_secret_value() if sec.sasl_password else None
-    return kwargs
 
 
 def decode_value(value: bytes | None, unpacker_factory: Callable[[], msgpack.Unpacker] = new_unpacker) -> Any:
@@ -70,56 +54,28 @@ def decode_value(value: bytes | None, unpacker_factory: Callable[[], msgpack.Unp
     return obj
 
 
-class PartitionState:
-    """What the runner needs to know about one assigned partition."""
-
-    __slots__ = ("committed", "generation", "highwater", "last_record_wall", "next_offset", "partition", "topic")
-
-    def __init__(self, topic: str, partition: int) -> None:
-        self.topic = topic
-        self.partition = partition
-        self.next_offset: int | None = None  # one past the last processed record
-        self.committed: int | None = None
-        self.last_record_wall = time.monotonic()
-        self.highwater: int | None = None
-        self.generation = 0  # bumped by every seek: records fetched before it are stale
-
-    @property
-    def lag(self) -> int | None:
-        if self.highwater is None:
-            return None
-        if self.next_offset is None:
-            # Nothing consumed yet: known only for an empty partition.
-            return 0 if self.highwater == 0 else None
-        return max(0, self.highwater - self.next_offset)
-
-
 class KafkaSource:
-    """Consumes the input topics in a consumer group.
+    """Consumes the input topics in a consumer group (a :class:`~barsmith.sources.base.LiveSource`).
 
     ``batches()`` yields one :class:`RecordBatch` per partition per poll, and an
     empty heartbeat batch when a poll returns nothing, so that the runner's
-    housekeeping runs while input is idle. ``on_revoked(streams)`` is called before
-    partitions are taken away, so the runner can flush and commit them.
+    housekeeping runs while input is idle. The listener given to :meth:`start` is
+    told of assignments, and of revocations before the partitions are taken away.
+    ``pause_on_assign`` (exactly-once): new partitions stay paused until their owner
+    has restored the checkpoint and sought to it, so no record is read from the
+    wrong place.
     """
 
-    def __init__(self, kafka: KafkaSettings) -> None:
+    def __init__(self, kafka: KafkaSettings, *, pause_on_assign: bool = False) -> None:
         self.settings = kafka
-        self.partitions: dict[str, PartitionState] = {}
-        self.on_revoked: Callable[[list[str]], Any] | None = None
-        self.on_assigned: Callable[[list[str]], Any] | None = None
+        self.partitions: dict[str, PartitionPosition] = {}
+        self.pause_on_assign = pause_on_assign
+        self.started = asyncio.Event()
+        self._listener: PartitionListener | None = None
         self._consumer: Any = None
         self._stopped = False
         self._scanner = new_scanner()
         self._failure: BaseException | None = None
-        # Exactly-once: new partitions stay paused until their owner has restored the
-        # checkpoint and sought to it, so no record is read from the wrong place.
-        self.pause_on_assign = False
-        self.started = asyncio.Event()
-
-    @property
-    def assigned(self) -> bool:
-        return bool(self.partitions)
 
     def progress(self) -> tuple[int, int] | None:
         return None
@@ -133,21 +89,17 @@ class KafkaSource:
         self._failure = exc
         self._stopped = True
 
-    async def start(self) -> None:
-        try:
-            from aiokafka import AIOKafkaConsumer
-            from aiokafka.abc import ConsumerRebalanceListener
-            from aiokafka.errors import KafkaError
-        except ImportError as exc:  # pragma: no cover - aiokafka is a dependency
-            raise ConfigError("the Kafka source needs aiokafka: pip install aiokafka") from exc
+    async def start(self, listener: PartitionListener) -> None:
+        from aiokafka.abc import ConsumerRebalanceListener
 
         source = self
+        self._listener = listener
 
-        class _Listener(ConsumerRebalanceListener):  # type: ignore[misc]
+        class _Rebalance(ConsumerRebalanceListener):  # type: ignore[misc]
             async def on_partitions_revoked(self, revoked: Any) -> None:
                 names = [stream_name(tp.topic, tp.partition) for tp in revoked]
-                if names and source.on_revoked is not None:
-                    await source.on_revoked(names)
+                if names:
+                    await listener.on_revoked(names)
                 for name in names:
                     source.partitions.pop(name, None)
 
@@ -156,37 +108,30 @@ class KafkaSource:
                     source._consumer.pause(*assigned)  # before any await: see pause_on_assign
                 for tp in assigned:
                     source.partitions.setdefault(
-                        stream_name(tp.topic, tp.partition), PartitionState(tp.topic, tp.partition)
+                        stream_name(tp.topic, tp.partition), PartitionPosition(tp.topic, tp.partition)
                     )
-                if source.on_assigned is not None:
-                    await source.on_assigned([stream_name(tp.topic, tp.partition) for tp in assigned])
+                await listener.on_assigned([stream_name(tp.topic, tp.partition) for tp in assigned])
                 log.info("partitions assigned: %s", ", ".join(sorted(source.partitions)) or "none")
 
         kafka = self.settings
-        self._consumer = AIOKafkaConsumer(
-            bootstrap_servers=kafka.bootstrap_servers,
+        consumer = new_consumer(
+            kafka,
+            kafka.client_id,
             group_id=kafka.group_id,
-            client_id=kafka.client_id,
-            enable_auto_commit=False,
             auto_offset_reset="earliest",
             max_poll_records=kafka.fetch_max_records,
-            isolation_level="read_committed",
             session_timeout_ms=kafka.session_timeout_ms,
             heartbeat_interval_ms=max(1_000, kafka.session_timeout_ms // 3),
-            **security_kwargs(kafka),
         )
-        try:
-            await self._consumer.start()
-        except KafkaError as exc:
-            await self._consumer.stop()
-            raise InputError(f"cannot reach Kafka at {', '.join(kafka.bootstrap_servers)}: {exc}") from exc
-        self._consumer.subscribe(topics=kafka.input_topics, listener=_Listener())
+        await start_client(consumer, kafka, "consumer")
+        self._consumer = consumer
+        consumer.subscribe(topics=kafka.input_topics, listener=_Rebalance())
         self.started.set()
 
     async def batches(self) -> AsyncIterator[RecordBatch]:
-        if self._consumer is None:
-            await self.start()
         consumer = self._consumer
+        if consumer is None:
+            raise StateError("the Kafka source was not started")
         timeout_ms = self.settings.poll_timeout_ms
         while not self._stopped:
             polled = await consumer.getmany(timeout_ms=timeout_ms, max_records=self.settings.fetch_max_records)
@@ -205,15 +150,15 @@ class KafkaSource:
                 if not records:
                     continue
                 name = stream_name(tp.topic, tp.partition)
-                state = self._current(name, tokens[tp])
-                if state is None:
+                position = current_position(self.partitions, name, tokens[tp])
+                if position is None:
                     log.debug("dropping %d stale records of %s (revoked or rewound)", len(records), name)
                     continue
-                if state.next_offset is not None and records[0].offset < state.next_offset:
-                    records = [r for r in records if r.offset >= state.next_offset]  # read twice
+                if position.next_offset is not None and records[0].offset < position.next_offset:
+                    records = [r for r in records if r.offset >= position.next_offset]  # read twice
                     if not records:
                         continue
-                state.last_record_wall = now
+                position.last_record_wall = now
                 batch = self._decode(name, records)
                 # The position advances when the runner has processed the batch (see
                 # current()), not here: a rebalance callback may checkpoint in between.
@@ -228,66 +173,57 @@ class KafkaSource:
         if self._failure is not None:
             raise self._failure
 
-    def current(self, batch: RecordBatch) -> PartitionState | None:
-        """The partition's state if ``batch`` is still valid — its partition neither
+    def current(self, batch: RecordBatch) -> PartitionPosition | None:
+        """The partition's position if ``batch`` is still valid — its partition neither
         reassigned nor sought since the batch was fetched; None for a stale batch.
         The caller sets ``next_offset = batch.end_position`` once it has processed it."""
-        return self._current(batch.stream, batch.token)
+        return current_position(self.partitions, batch.stream, batch.token)
 
-    def _token(self, stream: str) -> tuple[PartitionState, int] | None:
-        state = self.partitions.get(stream)
-        return (state, state.generation) if state is not None else None
-
-    def _current(self, stream: str, token: tuple[PartitionState, int] | None) -> PartitionState | None:
-        if token is None:
-            return None
-        fetched, generation = token
-        state = self.partitions.get(stream)
-        return state if state is fetched and state.generation == generation else None
+    def _token(self, stream: str) -> tuple[PartitionPosition, int] | None:
+        position = self.partitions.get(stream)
+        return position.token if position is not None else None
 
     async def seek(self, stream: str, offset: int | None) -> None:
-        """Continue ``stream`` at ``offset`` (None: the partition's beginning)."""
         from aiokafka.structs import TopicPartition
 
-        state = self.partitions[stream]
-        tp = TopicPartition(state.topic, state.partition)
+        position = self.partitions[stream]
+        tp = TopicPartition(position.topic, position.partition)
         if offset is None:
             await self._consumer.seek_to_beginning(tp)
         else:
             self._consumer.seek(tp, offset)
-        state.next_offset = offset
-        state.generation += 1
+        position.next_offset = offset
+        position.generation += 1
 
     def pause(self, stream: str) -> None:
         """Stop fetching ``stream`` (its owner is recovering; a seek will follow)."""
         from aiokafka.structs import TopicPartition
 
-        state = self.partitions.get(stream)
-        if state is not None and self._consumer is not None:
-            self._consumer.pause(TopicPartition(state.topic, state.partition))
+        position = self.partitions.get(stream)
+        if position is not None and self._consumer is not None:
+            self._consumer.pause(TopicPartition(position.topic, position.partition))
 
     def resume(self, stream: str) -> None:
         """Start fetching ``stream`` (paused since its assignment)."""
         from aiokafka.structs import TopicPartition
 
-        state = self.partitions[stream]
-        self._consumer.resume(TopicPartition(state.topic, state.partition))
+        position = self.partitions[stream]
+        self._consumer.resume(TopicPartition(position.topic, position.partition))
 
     async def committed_offset(self, stream: str) -> int | None:
-        """The consumer group's committed offset of ``stream``, if any."""
         from aiokafka.structs import TopicPartition
 
-        state = self.partitions[stream]
-        offset: int | None = await self._consumer.committed(TopicPartition(state.topic, state.partition))
+        position = self.partitions[stream]
+        offset: int | None = await self._consumer.committed(TopicPartition(position.topic, position.partition))
         return offset
 
     def _refresh_highwaters(self) -> None:
         from aiokafka.structs import TopicPartition
 
-        for state in self.partitions.values():
-            highwater = self._consumer.highwater(TopicPartition(state.topic, state.partition))
+        for position in self.partitions.values():
+            highwater = self._consumer.highwater(TopicPartition(position.topic, position.partition))
             if highwater is not None:
-                state.highwater = highwater
+                position.highwater = highwater
 
     def _decode(self, name: str, records: list[Any]) -> RecordBatch:
         values: list[Any] = []
@@ -319,20 +255,17 @@ class KafkaSource:
         return RecordBatch(name, name, values, positions, rejects)
 
     async def commit(self, streams: list[str] | None = None) -> dict[str, int]:
-        """Commit the processed offsets of ``streams`` (default: all assigned)."""
         from aiokafka.structs import TopicPartition
 
-        offsets = {}
-        for name, state in self.partitions.items():
-            if streams is not None and name not in streams:
-                continue
-            if state.next_offset is not None and state.next_offset != state.committed:
-                offsets[TopicPartition(state.topic, state.partition)] = state.next_offset
+        offsets = uncommitted(self.partitions, streams)
         if offsets and self._consumer is not None:
-            await self._consumer.commit(offsets)
-            for tp, offset in offsets.items():
-                self.partitions[stream_name(tp.topic, tp.partition)].committed = offset
-        return {stream_name(tp.topic, tp.partition): off for tp, off in offsets.items()}
+            positions = {stream: self.partitions[stream] for stream in offsets}
+            await self._consumer.commit(
+                {TopicPartition(p.topic, p.partition): offsets[stream] for stream, p in positions.items()}
+            )
+            for stream, position in positions.items():
+                position.committed = offsets[stream]
+        return offsets
 
     async def close(self) -> None:
         if self._consumer is not None:

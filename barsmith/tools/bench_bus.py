@@ -19,13 +19,14 @@ import tempfile
 import time
 import uuid
 from pathlib import Path
-from typing import Any
 
 import msgpack
 
+from barsmith.bus.clients import new_consumer, start_client
+from barsmith.bus.topics import ensure_topic
 from barsmith.service.app import build_service
 from barsmith.settings import KafkaSettings, load_settings
-from barsmith.tools.bus import publish_feed
+from barsmith.tools.feeds import publish_feed
 from barsmith.tools.synth import SynthConfig, write_feed
 
 SPECS = ["time:1m", "volume:20000", "notional:2e6"]
@@ -33,18 +34,15 @@ SPECS = ["time:1m", "volume:20000", "notional:2e6"]
 
 async def _bare_consume(kafka: KafkaSettings, topic: str, ticks: int) -> float:
     """Ticks/s of a consumer that only decodes (msgpack) what it fetches."""
-    from aiokafka import AIOKafkaConsumer
-
-    consumer = AIOKafkaConsumer(
+    consumer = new_consumer(
+        kafka,
+        f"{kafka.client_id}-bench",
         topic,
-        bootstrap_servers=kafka.bootstrap_servers,
         group_id=f"bench-bare-{uuid.uuid4().hex[:8]}",
         auto_offset_reset="earliest",
-        enable_auto_commit=False,
         max_poll_records=kafka.fetch_max_records,
-        isolation_level="read_committed",
     )
-    await consumer.start()
+    await start_client(consumer, kafka, "bare consumer")
     seen = 0
     started: float | None = None
     try:
@@ -77,17 +75,8 @@ async def _service_consume(
         metrics={"port": None},
         service={"delivery": delivery},
     )
-    runner = build_service(settings)
     delays: list[float] = []
-    observe = runner._observe_publish
-
-    def record_delay(bar: Any, delay_s: float) -> None:
-        delays.append(delay_s)
-        observe(bar, delay_s)
-
-    for sink in runner.counted_sinks:
-        if hasattr(sink.inner, "on_published"):
-            sink.inner.on_published = record_delay
+    runner = build_service(settings, on_published=lambda _bar, delay_s: delays.append(delay_s))
     task = asyncio.create_task(runner.serve())
     started: float | None = None
     while runner.total_stats().records < ticks:
@@ -147,8 +136,6 @@ async def _run(bootstrap: str, ticks: int, seed: int, rounds: int = 3) -> list[s
         paced_feed = Path(tmp) / "paced.msgpack"
         write_feed(paced_feed, SynthConfig(seed=seed + 1, symbols=20, messages=paced_n, duration_s=600))
         topic = f"bench-{run_id}-paced"
-        from barsmith.tools.bus import ensure_topic
-
         await ensure_topic(kafka, topic, 8)
         service = asyncio.create_task(_service_consume(bootstrap, topic, paced_n, f"{topic}-bars"))
         await asyncio.sleep(3)  # let the service join its group first

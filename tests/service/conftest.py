@@ -36,6 +36,24 @@ class Broker:
         subprocess.run([str(BROKER), "stop"], env=self.env, capture_output=True, text=True, timeout=120)
 
 
+@pytest.fixture(scope="session", autouse=True)
+def _feeds_from_an_invented_future() -> Iterator[None]:
+    """The synthetic feeds are an invented session dated 2027-01-01. The live service
+    rejects ticks far past the wall clock (README, "Event time"), so these tests run it
+    without that limit -- in this process and in the services they start -- except where
+    a test sets the limit itself."""
+    key = "BARSMITH_EVENT_TIME__MAX_AHEAD_OF_WALL_S"
+    old = os.environ.get(key)
+    os.environ[key] = ""
+    try:
+        yield
+    finally:
+        if old is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = old
+
+
 @pytest.fixture(scope="session")
 def kafka_broker(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Broker]:
     """A fresh single-node broker for this test session."""

@@ -37,7 +37,7 @@ from test_service import (
     scrape,
 )
 
-from barsmith.tools.bus import publish_feed
+from barsmith.tools.feeds import publish_feed
 
 # A dead member is noticed after the session timeout; the broker's minimum is 6 s.
 FAST_GROUP_ENV = {"BARSMITH_KAFKA__SESSION_TIMEOUT_MS": "6000"}
@@ -253,13 +253,11 @@ async def test_unreadable_checkpoint_stops_the_service_with_advice(kafka_bootstr
     from aiokafka import AIOKafkaProducer
     from test_service import service_settings
 
+    from barsmith.bus import STATE_TOPIC_CONFIGS, ensure_topic, partition_for
     from barsmith.checkpoint import encode_checkpoint
     from barsmith.engine import Engine
     from barsmith.errors import CheckpointError
     from barsmith.service.app import build_service
-    from barsmith.service.exactly_once import STATE_TOPIC_CONFIGS
-    from barsmith.sources.partitioning import partition_for
-    from barsmith.tools.bus import ensure_topic
 
     topic = "upgrade-ticks"
     settings = service_settings(kafka_bootstrap, topic, parquet={"dir": tmp_path / "bars"})

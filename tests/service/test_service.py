@@ -22,7 +22,7 @@ from barsmith.bars.bar import BAR_COLUMNS
 from barsmith.replay import replay_files
 from barsmith.service.app import build_service
 from barsmith.settings import KafkaSettings, load_settings
-from barsmith.tools.bus import publish_feed, record_topic
+from barsmith.tools.feeds import publish_feed, record_topic
 from barsmith.tools.synth import SynthConfig, write_feed
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -283,7 +283,7 @@ async def test_record_then_replay_round_trip(kafka_bootstrap: str, small_feed: P
 
 
 async def _create_topic(bootstrap: str, topic: str) -> None:
-    from barsmith.tools.bus import ensure_topic
+    from barsmith.bus import ensure_topic
 
     await ensure_topic(kafka(bootstrap), topic, 8)
 

@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import asyncio
-import contextlib
-import logging
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -12,14 +10,12 @@ from typing import Any
 
 import msgpack
 
-from barsmith.errors import ConfigError, InputError
+from barsmith.bus.clients import new_consumer, new_producer, start_client
+from barsmith.bus.topics import ensure_topic, partition_for, symbol_of, topic_partitions
+from barsmith.errors import ConfigError
 from barsmith.ingest.ticks import Tick
 from barsmith.settings import KafkaSettings
 from barsmith.sources.files import FileSource
-from barsmith.sources.kafka import security_kwargs
-from barsmith.sources.partitioning import partition_for, symbol_of
-
-log = logging.getLogger("barsmith.tools")
 
 
 @dataclass(slots=True)
@@ -28,56 +24,6 @@ class PublishSummary:
     ticks: int = 0  # tick candidates inside them
     skipped: int = 0  # spans of the file that were not msgpack (not publishable)
     seconds: float = 0.0
-
-
-async def _admin(kafka: KafkaSettings) -> Any:
-    from aiokafka.admin import AIOKafkaAdminClient
-    from aiokafka.errors import KafkaError
-
-    admin = AIOKafkaAdminClient(bootstrap_servers=kafka.bootstrap_servers, **security_kwargs(kafka))
-    try:
-        await admin.start()
-    except KafkaError as exc:
-        raise InputError(f"cannot reach Kafka at {', '.join(kafka.bootstrap_servers)}: {exc}") from exc
-    return admin
-
-
-async def _partition_count(admin: Any, topic: str) -> int | None:
-    for entry in await admin.describe_topics([topic]):
-        if entry.get("topic") == topic and entry.get("error_code", 0) == 0 and entry.get("partitions"):
-            return len(entry["partitions"])
-    return None
-
-
-async def topic_partitions(kafka: KafkaSettings, topic: str) -> int | None:
-    """How many partitions ``topic`` has, or None when it does not exist."""
-    admin = await _admin(kafka)
-    try:
-        return await _partition_count(admin, topic)
-    finally:
-        await admin.close()
-
-
-async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int, configs: dict[str, str] | None = None) -> int:
-    """Create ``topic`` with ``partitions`` partitions (and topic ``configs``) if missing;
-    returns its partition count."""
-    from aiokafka.admin import NewTopic
-    from aiokafka.errors import TopicAlreadyExistsError
-
-    admin = await _admin(kafka)
-    try:
-        found = await _partition_count(admin, topic)
-        if found is not None:
-            if found != partitions:
-                log.warning("topic %s exists with %d partitions (not %d); using it as it is", topic, found, partitions)
-            return found
-        with contextlib.suppress(TopicAlreadyExistsError):  # created meanwhile by someone else
-            await admin.create_topics(
-                [NewTopic(topic, num_partitions=partitions, replication_factor=1, topic_configs=configs or {})]
-            )
-        return partitions
-    finally:
-        await admin.close()
 
 
 async def publish_feed(
@@ -94,18 +40,9 @@ async def publish_feed(
     wall-time waits); 10.0 = ten times faster. ``batch_ticks > 1`` sends arrays of up
     to that many consecutive ticks of one partition per record.
     """
-    from aiokafka import AIOKafkaProducer
-
     count = await ensure_topic(kafka, topic, partitions)
-    producer = AIOKafkaProducer(
-        bootstrap_servers=kafka.bootstrap_servers,
-        client_id=f"{kafka.client_id}-publish",
-        enable_idempotence=True,
-        linger_ms=20,
-        max_batch_size=256 * 1024,
-        **security_kwargs(kafka),
-    )
-    await producer.start()
+    producer = new_producer(kafka, f"{kafka.client_id}-publish", linger_ms=20, max_batch_size=256 * 1024)
+    await start_client(producer, kafka, "publisher")
     summary = PublishSummary()
     started = time.perf_counter()
     pending: dict[int, list[Any]] = {}
@@ -176,19 +113,13 @@ async def record_topic(kafka: KafkaSettings, topic: str, out: Path, idle_s: floa
     """Capture ``topic`` from its beginning to the end offsets seen at start (or until
     ``idle_s`` passes with nothing new) into a replayable file; returns the record count.
     Partitions are interleaved in the order fetched; each partition stays in order."""
-    from aiokafka import AIOKafkaConsumer
     from aiokafka.structs import TopicPartition
 
-    consumer = AIOKafkaConsumer(
-        bootstrap_servers=kafka.bootstrap_servers,
-        enable_auto_commit=False,
-        isolation_level="read_committed",
-        **security_kwargs(kafka),
-    )
     count = await topic_partitions(kafka, topic)
     if count is None:
         raise ConfigError(f"topic {topic!r} does not exist")
-    await consumer.start()
+    consumer = new_consumer(kafka, f"{kafka.client_id}-record")
+    await start_client(consumer, kafka, "recorder")
     written = 0
     try:
         tps = [TopicPartition(topic, p) for p in range(count)]
