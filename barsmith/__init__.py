@@ -15,8 +15,8 @@ import os
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 from barsmith._version import __version__
-from barsmith.bars.bar import BAR_COLUMNS, Bar
-from barsmith.bars.spec import BarKind, BarSpec, parse_specs
+from barsmith.bars.record import Bar
+from barsmith.bars.spec import BAR_COLUMNS, BarKind, BarSpec, parse_specs
 from barsmith.book.book import BookStatus, Outcome, SymbolBook
 from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine, EngineStats

@@ -1,16 +1,24 @@
 """Engine checkpoints: an engine's whole state as versioned bytes, and back.
 
 A checkpoint holds everything an engine needs to continue as if it had never
-stopped: per-symbol books and sequence positions, open and sealed bars, the
-watermark, what has been closed, counters, and the caller's metadata (e.g. the
-input offset it covers). Restoring it and feeding the rest of the stream gives
+stopped: per-symbol books and sequence positions, open and sealed bars with their
+statistic groups' accumulators, the families' per-symbol state, the event-time
+guard's held ticks, the watermark, what has been closed, counters, and the caller's
+metadata (e.g. the input offset it covers, and the sinks' state -- the Parquet sink's
+carried bars among them). Restoring it and feeding the rest of the stream gives
 exactly the bars and books of an uninterrupted run (a property test pins this).
 
 Format: one msgpack map ``{"format": "barsmith-engine-checkpoint", "version": N,
-"specs": [...], "lateness_ns": L, "engine": {...}, "meta": {...}}``. A reader
-accepts the versions it knows and refuses any other with a message telling the
-operator what to do; it also refuses a checkpoint written with different bar specs
-or lateness, because continuing from it would silently mix two definitions.
+"specs": [...], "layouts": [[spec, [groups]], ...], "lateness_ns": L, "engine": {...},
+"meta": {...}}``. The version covers all of it, the carried bars included. A reader
+accepts the versions it knows -- an older one is upgraded on reading -- and refuses
+any other with a message telling the operator what to do; it also refuses a
+checkpoint written with different bar specs, statistic groups or lateness, because
+continuing from it would silently mix two definitions.
+
+Versions: 1, the first (top-of-book bars with the ``core`` and ``spread`` columns,
+positional); 2, every part serializing itself, the bar layouts, the event-time
+guard, carried bars by spec with their column names.
 """
 
 from __future__ import annotations
@@ -20,13 +28,13 @@ from typing import Any, Final
 
 import msgpack
 
-from barsmith.bars.spec import BarSpec
+from barsmith.bars.family import NEVER
+from barsmith.bars.spec import BAR_COLUMNS, DEFAULT_GROUPS, BarSpec
 from barsmith.engine import Engine
 from barsmith.errors import CheckpointError
-from barsmith.ingest.eventtime import StreamLimits
+from barsmith.ingest.eventtime import UNCONFIRMED, StreamLimits
 
 FORMAT_NAME: Final = "barsmith-engine-checkpoint"
-# 2: the event-time guard's state (held ticks); 1 is read as "nothing held".
 FORMAT_VERSION: Final = 2
 READABLE_VERSIONS: Final = frozenset({1, 2})
 
@@ -39,6 +47,7 @@ def encode_checkpoint(engine: Engine, meta: dict[str, Any] | None = None) -> byt
         "format": FORMAT_NAME,
         "version": FORMAT_VERSION,
         "specs": [spec.text for spec in engine.specs],
+        "layouts": _layouts(engine.specs),
         "lateness_ns": engine.lateness_ns,
         "engine": engine.to_state(),
         "meta": meta or {},
@@ -51,7 +60,7 @@ def decode_checkpoint(
 ) -> tuple[Engine, dict[str, Any]]:
     """Rebuild the engine stored in ``data``; raises :class:`CheckpointError` when the
     bytes are not a checkpoint, come from an unknown format version, or were written
-    with other bar specs or lateness."""
+    with other bar specs, statistic groups or lateness."""
     try:
         payload = msgpack.unpackb(data, raw=False, strict_map_key=False)
     except (msgpack.exceptions.UnpackException, ValueError) as exc:
@@ -72,16 +81,72 @@ def decode_checkpoint(
             "from the input)"
         )
     written_specs = list(payload.get("specs", []))
+    written_layouts = payload.get("layouts") or [[text, list(DEFAULT_GROUPS)] for text in written_specs]
     wanted_specs = [spec.text for spec in specs]
-    if written_specs != wanted_specs or payload.get("lateness_ns") != lateness_ns:
+    if (
+        written_specs != wanted_specs
+        or payload.get("lateness_ns") != lateness_ns
+        or [[t, list(g)] for t, g in written_layouts] != _layouts(specs)
+    ):
         raise CheckpointError(
-            f"checkpoint was written for bars {written_specs} with lateness {payload.get('lateness_ns')} ns, "
-            f"but the settings now say {wanted_specs} with {lateness_ns} ns; restore the old settings, or use a "
-            "new consumer group and state topic to rebuild from the input"
+            f"checkpoint was written for bars {_describe(written_layouts)} with lateness "
+            f"{payload.get('lateness_ns')} ns, but the settings now say {_describe(_layouts(specs))} with "
+            f"{lateness_ns} ns; restore the old settings, or use a new consumer group and state topic to rebuild "
+            "from the input"
         )
     try:
+        if version == 1:
+            _upgrade_from_1(payload, specs, limits or StreamLimits())
         engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
         raise CheckpointError(f"checkpoint is damaged: {type(exc).__name__}: {exc}") from exc
     meta: dict[str, Any] = payload.get("meta", {})
     return engine, meta
+
+
+def _layouts(specs: Sequence[BarSpec]) -> list[list[Any]]:
+    return [[spec.text, list(spec.groups)] for spec in specs]
+
+
+def _describe(layouts: list[list[Any]]) -> str:
+    return "[" + ", ".join(f"{text} ({'+'.join(groups)})" for text, groups in layouts) + "]"
+
+
+# -- version 1 --------------------------------------------------------------------------
+
+
+def _upgrade_from_1(payload: dict[str, Any], specs: Sequence[BarSpec], limits: StreamLimits) -> None:
+    """Rewrite a version-1 payload in place into version 2's shape. Version 1 had the
+    default groups only, no event-time guard (its watermark is confirmed time), and
+    carried Parquet bars as positional rows of the default columns."""
+    old = payload["engine"]
+    index_of = {spec.text: i for i, spec in enumerate(specs)}
+    bars = []
+    for item in old["bars"]:
+        index = index_of[str(item["spec_text"])]
+        spec = specs[index]
+        seal_at = int(item["end"]) if spec.is_time else NEVER
+        progress = {"ticks": float(item["trades"]), "volume": item["volume"], "notional": item["notional"]}
+        closed = item.get("closed_book") or [None, None, None]
+        core = [item[name] for name in ("open", "high", "low", "close", "volume", "notional", "trades")]
+        spread = [item["spread_area"], item["spread_time"], item["spread_min"], item["spread_max"], item["open_spread"]]
+        frame = [item["symbol"], item["start"], item["end"], seal_at, item["messages"], item["gaps"]]
+        frame.append(0.0 if spec.is_time else progress[spec.family.keyword])
+        frame.append([core, [*spread, *closed]])
+        bars.append([index, frame])
+    symbols = []
+    for row in old["symbols"]:
+        book = [row[1], row[2], row[3], row[4], row[5], row[6], row[7], row[8]]
+        symbols.append([row[0], book, {"spread": [row[9], row[10]]}, [None] * len(specs), row[11]])
+    watermark = int(old["watermark"])
+    payload["engine"] = {
+        **old,
+        "bars": bars,
+        "symbols": symbols,
+        "horizon": watermark + limits.max_jump_ns if watermark else UNCONFIRMED,
+        "guard": {"order": 0, "normal": 0, "last_normal": -1, "recent": [None, -1, None, -1], "held": []},
+    }
+    parquet = payload.get("meta", {}).get("sinks", {}).get("parquet")
+    if isinstance(parquet, dict) and isinstance(parquet.get("bars"), list):
+        parquet["columns"] = {str(row[1]): list(BAR_COLUMNS) for row in parquet["bars"]}
+        parquet["bars"] = [[row[1], list(row)] for row in parquet["bars"]]

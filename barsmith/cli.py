@@ -82,6 +82,9 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("--rows", type=_positive_int, default=10, help="how many bars (default 10)")
     show.set_defaults(handler=_cmd_show)
 
+    columns = commands.add_parser("columns", help="print every bar column: its group, type and meaning")
+    columns.set_defaults(handler=_cmd_columns)
+
     run = commands.add_parser("run", help="run the live service on Kafka")
     run.add_argument("--config", metavar="FILE", help="TOML settings file")
     run.add_argument("--bootstrap", metavar="HOST:PORT[,...]", help="Kafka bootstrap servers")
@@ -308,18 +311,29 @@ def _cmd_synth(args: argparse.Namespace) -> int:
 def _cmd_show(args: argparse.Namespace) -> int:
     import pandas as pd
 
+    from barsmith.bars.spec import shown_columns
+
     if not args.dir.is_dir():
         raise ConfigError(f"not a directory: {args.dir}")
-    frame = pd.read_parquet(args.dir).sort_values(["start", "symbol", "spec"], kind="stable")
+    # File by file: bar sets that carry other statistic groups have other columns.
+    files = sorted(p for p in args.dir.glob("*.parquet") if not p.name.startswith(("_", ".")))
+    frame = pd.concat([pd.read_parquet(path) for path in files], ignore_index=True)
+    frame = frame.sort_values(["start", "symbol", "spec"], kind="stable")
     if args.spec is not None:
         frame = frame[frame["spec"] == args.spec]
     if args.symbol is not None:
         frame = frame[frame["symbol"] == args.symbol]
-    columns = ["symbol", "spec", "start", "end", "open", "high", "low", "close", "volume", "vwap", "trades"]
-    columns += ["spread_mean", "complete"]
+    columns = [name for name in shown_columns() if name in frame.columns]
     with pd.option_context("display.width", 200, "display.max_columns", 20):
         print(f"{len(frame):,} bars in {args.dir}; the first {min(args.rows, len(frame))}:")
         print(frame[columns].head(args.rows).to_string(index=False))
+    return EXIT_OK
+
+
+def _cmd_columns(args: argparse.Namespace) -> int:
+    from barsmith.bars.spec import column_table
+
+    print(column_table())
     return EXIT_OK
 
 

@@ -37,19 +37,16 @@ from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Final
 
-from barsmith.bars.bar import Bar, OpenBar
-from barsmith.bars.spec import BarKind, BarSpec
-from barsmith.book.book import BookStatus, Outcome, SymbolBook
+from barsmith.bars.bar import BarLayout, OpenBar
+from barsmith.bars.group import GROUPS, Tracker
+from barsmith.bars.record import Bar
+from barsmith.bars.spec import BarSpec
+from barsmith.book.book import Outcome, SymbolBook
 from barsmith.errors import StateError
 from barsmith.ingest.eventtime import UNCONFIRMED, ClockGuard, HeldTick, StreamLimits
 from barsmith.ingest.rejects import Reject, pack_record
 from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
 from barsmith.units import format_duration_ns
-
-# Volume and notional thresholds are compared with this relative tolerance, so that a
-# sum of decimal quantities (0.1 + 0.2 ...) that equals the threshold on paper closes
-# the bar although binary floating point lands a hair below it.
-THRESHOLD_RTOL: Final = 1e-9
 
 _DUPLICATE: Final = Outcome.DUPLICATE
 _GAP: Final = Outcome.GAP
@@ -102,15 +99,17 @@ class EngineStats:
 
 
 class _SymbolState:
-    """A symbol's book, its open bar per spec, and the spread in effect since when."""
+    """A symbol's book, its open bar per spec, each tracked quantity in effect since
+    when, and each family's per-symbol state."""
 
-    __slots__ = ("bars", "book", "spread", "spread_since")
+    __slots__ = ("bars", "book", "family_states", "since", "tracked")
 
-    def __init__(self, symbol: str, n_specs: int) -> None:
+    def __init__(self, symbol: str, n_specs: int, n_trackers: int, family_states: list[Any]) -> None:
         self.book = SymbolBook(symbol)
         self.bars: list[OpenBar | None] = [None] * n_specs
-        self.spread: float | None = None
-        self.spread_since = 0
+        self.tracked: list[float | None] = [None] * n_trackers
+        self.since: list[int] = [0] * n_trackers
+        self.family_states = family_states
 
 
 class Engine:
@@ -136,9 +135,20 @@ class Engine:
         self._wall_clock = False
         self._wall_limit_ns = 0  # later ticks are rejected as future
         self._wall_floor_ns = 0  # ticks from here to _wall_limit_ns are never held
-        self._time_specs = [(i, s.interval_ns, s.text) for i, s in enumerate(self.specs) if s.is_time]
-        self._event_specs = [
-            (i, s.kind, s.threshold * (1.0 - THRESHOLD_RTOL), s.text) for i, s in enumerate(self.specs) if not s.is_time
+        # Each spec's family and groups; the quantities its groups weight by time, each
+        # followed once per symbol however many specs use it.
+        tracker_index: dict[str, int] = {}
+        self._trackers: list[Tracker] = []
+        for spec in self.specs:
+            for name in spec.groups:
+                for tracker in GROUPS[name].trackers:
+                    if tracker.name not in tracker_index:
+                        tracker_index[tracker.name] = len(self._trackers)
+                        self._trackers.append(tracker)
+        self._tracker_names = [tracker.name for tracker in self._trackers]
+        self._layouts = [
+            BarLayout(spec.text, spec.family, [GROUPS[name] for name in spec.groups], tracker_index)
+            for spec in self.specs
         ]
         self._symbols: dict[str, _SymbolState] = {}
         self._watermark = 0
@@ -204,12 +214,13 @@ class Engine:
         release, rejected = self._guard.settle_all()
         self._use_held(release, rejected)
         self._sweep(_NO_CLOSE - 1, complete=False)
+        until = self._watermark
         for state in self._symbols.values():
-            until = max(self._watermark, state.spread_since)
             for index, bar in enumerate(state.bars):
                 if bar is not None:
-                    bar.integrate(state.spread, state.spread_since, until)
-                    self._emit(bar, state.book.snapshot_state(), False, until == bar.start)
+                    layout = self._layouts[index]
+                    self._seal(bar, layout, state, until)
+                    self._emit(bar, layout, False, until == bar.start)
                     state.bars[index] = None
 
     def set_wall_clock(self, now_ns: int) -> None:
@@ -242,39 +253,35 @@ class Engine:
 
     def to_state(self) -> dict[str, Any]:
         """The engine's whole state as plain data (see :mod:`barsmith.checkpoint`).
-        Finished bars and rejects must have been taken first."""
+        Finished bars and rejects must have been taken first. Each part serializes
+        itself: books, open bars (with their groups' accumulators), families' per-symbol
+        state, the event-time guard."""
         if self._bars or self._rejects:
             raise StateError("take_bars() and take_rejects() before a checkpoint: output is pending")
         bar_ids: dict[int, int] = {}
-        bars: list[dict[str, Any]] = []
+        bars: list[list[Any]] = []
 
-        def bar_ref(bar: OpenBar) -> int:
+        def bar_ref(bar: OpenBar, index: int) -> int:
+            # Open time bars are both in their symbol's slot and in the due-heap.
             key = id(bar)
             if key not in bar_ids:
                 bar_ids[key] = len(bars)
-                bars.append(_bar_state(bar))
+                bars.append([index, bar.to_state()])
             return bar_ids[key]
 
         symbols = []
+        families = [layout.family for layout in self._layouts]
         for sym, state in self._symbols.items():
-            book = state.book
             symbols.append(
                 [
                     sym,
-                    book.status.value,
-                    book.last_seq,
-                    book.last_ts,
-                    book.bid_px,
-                    book.bid_qty,
-                    book.ask_px,
-                    book.ask_qty,
-                    book.time_regressions,
-                    state.spread,
-                    state.spread_since,
-                    [None if bar is None else bar_ref(bar) for bar in state.bars],
+                    state.book.to_state(),
+                    {name: [state.tracked[k], state.since[k]] for k, name in enumerate(self._tracker_names)},
+                    [family.state_to_data(fs) for family, fs in zip(families, state.family_states, strict=True)],
+                    [None if bar is None else bar_ref(bar, index) for index, bar in enumerate(state.bars)],
                 ]
             )
-        due = [[end, order, bar_ref(bar), state.book.symbol, index] for end, order, bar, state, index in self._due]
+        due = [[end, order, bar_ref(bar, i), state.book.symbol, i] for end, order, bar, state, i in self._due]
         stats = self.stats
         return {
             "watermark": self._watermark,
@@ -303,33 +310,28 @@ class Engine:
     ) -> Engine:
         """Rebuild an engine from :meth:`to_state` output (same specs and lateness)."""
         engine = cls(specs, lateness_ns, limits)
-        bars = [_bar_from_state(item) for item in data["bars"]]
-        for row in data["symbols"]:
-            sym = str(row[0])
-            state = _SymbolState(sym, len(engine.specs))
-            book = state.book
-            book.status = BookStatus(row[1])
-            book.last_seq = int(row[2])
-            book.last_ts = int(row[3])
-            book.bid_px, book.bid_qty, book.ask_px, book.ask_qty = row[4], row[5], row[6], row[7]
-            book.time_regressions = int(row[8])
-            state.spread = row[9]
-            state.spread_since = int(row[10])
-            refs: list[Any] = row[11]
-            if len(refs) != len(engine.specs):
-                raise StateError(f"checkpoint has {len(refs)} bar slots for {sym}, expected {len(engine.specs)}")
+        layouts = engine._layouts
+        bars = [layouts[int(index)].bar_from_state(item) for index, item in data["bars"]]
+        families = [layout.family for layout in layouts]
+        for sym_data, book_data, tracked, family_data, refs in data["symbols"]:
+            sym = str(sym_data)
+            if len(refs) != len(layouts):
+                raise StateError(f"checkpoint has {len(refs)} bar slots for {sym}, expected {len(layouts)}")
+            state = engine._new_symbol(sym)
+            state.book.restore(book_data)
+            for k, name in enumerate(engine._tracker_names):
+                if name in tracked:
+                    value, since = tracked[name]
+                    state.tracked[k], state.since[k] = value, int(since)
+            state.family_states = [f.state_from_data(d) for f, d in zip(families, family_data, strict=True)]
             state.bars = [None if ref is None else bars[int(ref)] for ref in refs]
-            engine._symbols[sym] = state
         for end, order, ref, sym, index in data["due"]:
             engine._due.append((int(end), int(order), bars[int(ref)], engine._symbols[str(sym)], int(index)))
         heapq.heapify(engine._due)
         engine._next_due = engine._due[0][0] if engine._due else _NO_CLOSE
         engine._watermark = int(data["watermark"])
-        # Written before the event-time guard existed: the watermark is confirmed time.
-        default_horizon = engine._watermark + engine._max_jump_ns if engine._watermark else UNCONFIRMED
-        engine._horizon = int(data.get("horizon", default_horizon))
-        if "guard" in data:
-            engine._guard.restore(data["guard"], decode_tick)
+        engine._horizon = int(data["horizon"])
+        engine._guard.restore(data["guard"], decode_tick)
         engine._closed_through = int(data["closed_through"])
         engine._order = int(data["order"])
         stats = engine.stats
@@ -339,6 +341,11 @@ class Engine:
         stats.rejected.update({str(k): int(v) for k, v in values[6].items()})
         stats.bars.update({str(k): int(v) for k, v in values[7].items()})
         return engine
+
+    def _new_symbol(self, sym: str) -> _SymbolState:
+        families = [layout.family.new_state() for layout in self._layouts]
+        state = self._symbols[sym] = _SymbolState(sym, len(self._layouts), len(self._trackers), families)
+        return state
 
     # -- the hot path ----------------------------------------------------------------
 
@@ -382,7 +389,7 @@ class Engine:
                 detail = f"this stream already has {self._max_symbols:,} symbols (limits.max_symbols)"
                 self._refuse(record, position, source, RejectReason.SYMBOL_LIMIT, detail, tick)
                 return
-            state = self._symbols[tick.sym] = _SymbolState(tick.sym, len(self.specs))
+            state = self._new_symbol(tick.sym)
         book = state.book
         regressions = book.time_regressions
         outcome = book.admit(tick, self._max_behind_ns)
@@ -416,29 +423,47 @@ class Engine:
         else:
             px = None
         bars = state.bars
+        layouts = self._layouts
 
+        # Every spec's bar, through its family's fixed calls (no family-specific code).
         late_specs: list[str] | None = None
-        for index, interval, text in self._time_specs:
+        closing: list[int] | None = None
+        for index in range(len(layouts)):
+            layout = layouts[index]
+            family = layout.family
             bar = bars[index]
-            if bar is not None and t >= bar.end:
-                # The symbol moved past this bar: freeze it; it is emitted when due.
-                bar.integrate(state.spread, state.spread_since, bar.end)
-                bar.closed_book = book.snapshot_state()  # the book before this message
+            if bar is not None and t >= bar.seal_at:
+                # The symbol moved past this bar: freeze it (before this message's
+                # effect on the book). A bar closed by time waits to be due; any
+                # other can take nothing more, so it is complete now.
+                self._seal(bar, layout, state, bar.end)
                 bars[index] = None
+                if not family.closes_by_time:
+                    self._emit(bar, layout, True, bar.end == bar.start)
                 bar = None
             if bar is None:
-                start = t - t % interval
-                if start + interval <= self._closed_through:
+                if family.opens_on_trade and px is None:
+                    continue
+                start, end, seal_at = family.window(t)
+                if family.closes_by_time and end <= self._closed_through:
                     if late_specs is None:
                         late_specs = []
-                    late_specs.append(text)
+                    late_specs.append(layout.spec_text)
                     continue
-                bar = bars[index] = OpenBar(text, tick.sym, start, start + interval)
-                self._push_due(bar, state, index)
+                bar = bars[index] = layout.new_bar(tick.sym, start, end, seal_at)
+                self._opened(bar, layout, state)
+                if family.closes_by_time:
+                    self._push_due(bar, state, index)
             bar.messages += 1
             bar.gaps += gap
             if px is not None:
-                bar.add_trade(px, qty)
+                accs = bar.accs
+                for j in layout.trade_accs:
+                    accs[j].trade(px, qty)
+                if family.counts_trades and family.trade(bar, state.family_states[index], px, qty, t):
+                    if closing is None:
+                        closing = []
+                    closing.append(index)
         if late_specs is not None:
             stats.late += 1
             self._rejects.append(
@@ -452,48 +477,47 @@ class Engine:
                 )
             )
 
-        closing: list[int] | None = None
-        for index, kind, threshold, text in self._event_specs:
-            bar = bars[index]
-            if bar is None:
-                if px is None:
-                    continue
-                bar = bars[index] = OpenBar(text, tick.sym, t, t)
-                bar.open_spread = state.spread
-            bar.messages += 1
-            bar.gaps += gap
-            if px is not None:
-                bar.add_trade(px, qty)
-                bar.end = t
-                if kind is BarKind.VOLUME:
-                    reached = bar.volume >= threshold
-                elif kind is BarKind.NOTIONAL:
-                    reached = bar.notional >= threshold
-                else:
-                    reached = bar.trades >= threshold
-                if reached:
-                    if closing is None:
-                        closing = []
-                    closing.append(index)
-
         book.apply(tick, outcome)
-        spread = book.spread()
-        if spread != state.spread:
-            old = state.spread
-            since = state.spread_since
-            for bar in bars:
-                if bar is not None:
-                    bar.integrate(old, since, t)
-            state.spread = spread
-            state.spread_since = t
+        # Time-weighted quantities (the spread ...): open bars are credited only when
+        # one changes, with the span the old value held.
+        trackers = self._trackers
+        for k in range(len(trackers)):
+            value = trackers[k].value(book)
+            old = state.tracked[k]
+            if value != old:
+                since = state.since[k]
+                for index in range(len(layouts)):
+                    bar = bars[index]
+                    if bar is not None:
+                        accs = bar.accs
+                        for j, slot in layouts[index].held[k]:
+                            accs[j].held(slot, old, since, t, bar.start)
+                state.tracked[k] = value
+                state.since[k] = t
         if closing is not None:
-            book_state = book.snapshot_state()
             for index in closing:
                 bar = bars[index]
                 assert bar is not None
-                bar.integrate(state.spread, state.spread_since, t)
+                layout = layouts[index]
+                self._seal(bar, layout, state, t)
                 bars[index] = None
-                self._emit(bar, book_state, True, t == bar.start)
+                self._emit(bar, layout, True, t == bar.start)
+
+    def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState) -> None:
+        """A new bar learns the tracked values in effect (before its first message)."""
+        accs = bar.accs
+        for k, j, slot in layout.tracked:
+            accs[j].opened(slot, state.tracked[k])
+
+    def _seal(self, bar: OpenBar, layout: BarLayout, state: _SymbolState, until: int) -> None:
+        """The bar's window ends at ``until``: credit the tracked values still in effect,
+        and let it take its closing book (the book as it stands now)."""
+        accs = bar.accs
+        for k, j, slot in layout.tracked:
+            accs[j].held(slot, state.tracked[k], state.since[k], until, bar.start)
+        book = state.book
+        for j in layout.book_accs:
+            accs[j].closing(book)
 
     # -- the event-time guard (rare paths) ---------------------------------------------
 
@@ -530,51 +554,17 @@ class Engine:
         due = self._due
         while due and due[0][0] <= limit_ns:
             end, _, bar, state, index = heapq.heappop(due)
+            layout = self._layouts[index]
             if state.bars[index] is bar:
                 # Still the symbol's open bar: its last message is the symbol's last.
-                until = end if complete else min(end, max(self._watermark, state.spread_since))
-                bar.integrate(state.spread, state.spread_since, until)
+                self._seal(bar, layout, state, end if complete else min(end, self._watermark))
                 state.bars[index] = None
-                book_state = state.book.snapshot_state()
-            else:
-                assert bar.closed_book is not None
-                book_state = bar.closed_book
-            self._emit(bar, book_state, complete, False)
+            self._emit(bar, layout, complete, False)
         self._next_due = due[0][0] if due else _NO_CLOSE
 
-    def _emit(
-        self,
-        bar: OpenBar,
-        book_state: tuple[float | None, float | None, float | None],
-        complete: bool,
-        empty_window: bool,
-    ) -> None:
+    def _emit(self, bar: OpenBar, layout: BarLayout, complete: bool, empty_window: bool) -> None:
         self.stats.bars[bar.spec_text] += 1
-        self._bars.append(bar.finish(book_state, complete, empty_window))
-
-
-_BAR_FIELDS: Final = (
-    "spec_text", "symbol", "start", "end", "open", "high", "low", "close", "volume", "notional", "trades",
-    "messages", "gaps", "spread_area", "spread_time", "spread_min", "spread_max", "open_spread",
-)  # fmt: skip
-
-
-def _bar_state(bar: OpenBar) -> dict[str, Any]:
-    out: dict[str, Any] = {name: getattr(bar, name) for name in _BAR_FIELDS}
-    out["closed_book"] = list(bar.closed_book) if bar.closed_book is not None else None
-    return out
-
-
-def _bar_from_state(item: dict[str, Any]) -> OpenBar:
-    bar = OpenBar(str(item["spec_text"]), str(item["symbol"]), int(item["start"]), int(item["end"]))
-    bar.open, bar.high, bar.low, bar.close = item["open"], item["high"], item["low"], item["close"]
-    bar.volume, bar.notional = item["volume"], item["notional"]
-    bar.trades, bar.messages, bar.gaps = int(item["trades"]), int(item["messages"]), int(item["gaps"])
-    bar.spread_area, bar.spread_time = item["spread_area"], int(item["spread_time"])
-    bar.spread_min, bar.spread_max, bar.open_spread = item["spread_min"], item["spread_max"], item["open_spread"]
-    closed = item["closed_book"]
-    bar.closed_book = (closed[0], closed[1], closed[2]) if closed is not None else None
-    return bar
+        self._bars.append(bar.finish(layout.names, complete, empty_window))
 
 
 def _reject_of(

@@ -13,7 +13,16 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, SecretStr, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    SecretStr,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
 from pydantic_settings import (
     BaseSettings,
     PydanticBaseSettingsSource,
@@ -21,7 +30,7 @@ from pydantic_settings import (
     TomlConfigSettingsSource,
 )
 
-from barsmith.bars.spec import BarSpec, parse_specs
+from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
 
@@ -161,6 +170,11 @@ class Settings(BaseSettings):
         validate_default=True,
     )
 
+    # Before ``bars``: the specs' validation reads it.
+    bar_groups: list[str] = Field(
+        default_factory=lambda: list(DEFAULT_GROUPS),
+        description="statistic groups of a bar spec that names none (spec@group,...); core is always carried",
+    )
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
     lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
     parquet: ParquetSettings = Field(default_factory=ParquetSettings)
@@ -171,17 +185,26 @@ class Settings(BaseSettings):
     event_time: EventTimeSettings = Field(default_factory=EventTimeSettings)
     limits: LimitsSettings = Field(default_factory=LimitsSettings)
 
+    @field_validator("bar_groups")
+    @classmethod
+    def _groups_known(cls, value: list[str]) -> list[str]:
+        try:
+            parse_specs(["time:1m"], value)
+        except BarSpecError as exc:
+            raise ValueError(str(exc).replace("bad bar spec 'time:1m': ", "")) from None
+        return value
+
     @field_validator("bars")
     @classmethod
-    def _specs_parse(cls, value: list[str]) -> list[str]:
+    def _specs_parse(cls, value: list[str], info: ValidationInfo) -> list[str]:
         try:
-            parse_specs(value)
+            parse_specs(value, info.data.get("bar_groups", DEFAULT_GROUPS))
         except BarSpecError as exc:
             raise ValueError(str(exc)) from None
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        return parse_specs(self.bars)
+        return parse_specs(self.bars, self.bar_groups)
 
     @property
     def state_topic(self) -> str:

@@ -3,6 +3,7 @@ versions and changed settings are refused with advice, never misread."""
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import msgpack
@@ -103,16 +104,57 @@ def test_pending_output_must_be_taken_first() -> None:
         encode_checkpoint(engine)
 
 
-def test_a_version_1_checkpoint_is_read_as_holding_no_ticks() -> None:
-    # Version 1 predates the event-time guard: its watermark is the stream's confirmed time.
-    engine = Engine(SPEC_LIST, S)
-    recs = [trade("FENWORTH.KMX", T0, 1, 10.0, 1.0), trade("MARROWAY.KMX", T0 + S, 1, 5.0, 1.0)]
-    run(recs, engine)
-    payload = msgpack.unpackb(encode_checkpoint(engine), strict_map_key=False)
-    payload["version"] = 1
-    del payload["engine"]["guard"], payload["engine"]["horizon"]
-    restored, _ = decode_checkpoint(bytes(msgpack.packb(payload)), SPEC_LIST, S)
-    # A tick in the stream's time is used at once, not held for confirmation.
-    restored.process([trade("FENWORTH.KMX", T0 + 2 * S, 2, 11.0, 1.0)], [2], "t")
-    book = restored.book("FENWORTH.KMX")
-    assert book is not None and book.last_seq == 2
+V1_SPECS = parse_specs(["time:1m", "volume:7", "ticks:4"])
+V1_CHECKPOINT = Path(__file__).parent / "data" / "checkpoint-v1.msgpack"
+V1_CUT = 61
+
+
+def v1_feed() -> list[dict[str, Any]]:
+    """The feed behind tests/data/checkpoint-v1.msgpack: that file is a real version-1
+    checkpoint, written by barsmith 0.1.0's own encoder after the first 61 records, with
+    the exactly-once Parquet sink's state (22 carried bars) in its meta."""
+    recs: list[dict[str, Any]] = []
+    listings = (("FENWORTH.KMX", 0, 10.0), ("MARROWAY.KMX", 3 * S, 20.0))
+    for sym, offset, base in listings:
+        recs.append(snap(sym, T0 + offset, 1, bid_px=base, bid_qty=5.0, ask_px=base + 0.5, ask_qty=5.0))
+    seqs = dict.fromkeys([sym for sym, _, _ in listings], 1)
+    for i in range(1, 60):
+        for sym, offset, base in listings:
+            seqs[sym] += 1
+            ts = T0 + offset + i * 7 * S
+            if i % 2:
+                recs.append(trade(sym, ts, seqs[sym], base + 0.5 * (i % 3), float(1 + i % 4)))
+            else:
+                recs.append(
+                    {"sym": sym, "ts": ts, "seq": seqs[sym], "kind": "delta", "ask_px": base + 0.25 * (1 + i % 3)}
+                )
+    return recs
+
+
+async def test_a_version_1_checkpoint_is_upgraded_and_continues_the_stream(tmp_path: Path) -> None:
+    from barsmith.sinks.parquet import ParquetPartSink
+
+    recs = v1_feed()
+    whole = Engine(V1_SPECS, 2 * S)
+    expected = run(recs, whole)
+    whole.finish()
+    expected += whole.take_bars()
+
+    engine, meta = decode_checkpoint(V1_CHECKPOINT.read_bytes(), V1_SPECS, 2 * S)
+    assert meta["offset"] == V1_CUT
+    # Its carried Parquet bars (positional rows in version 1) come back as bars.
+    sink = ParquetPartSink(tmp_path, V1_SPECS, roll_interval_s=3600)
+    await sink.restore("ticks[0]", meta["sinks"]["parquet"], V1_CUT)
+    await sink.publish("ticks[0]", run(recs[V1_CUT:], engine, V1_CUT))
+    engine.finish()
+    await sink.publish("ticks[0]", engine.take_bars())
+    await sink.prepare("ticks[0]", len(recs), final=True)
+    restored = sorted(tuple(bar.values) for bar in sink._buffers["ticks[0]"].bars)
+    # Everything equals an uninterrupted run: the 22 bars before the cut and the rest.
+    assert len(restored) == len(expected) and restored == sorted(tuple(bar.values) for bar in expected)
+    assert books_of(engine) == books_of(whole) and engine.stats == whole.stats
+
+
+def test_a_version_1_checkpoint_with_other_groups_is_refused() -> None:
+    with pytest.raises(CheckpointError, match="restore the old settings"):
+        decode_checkpoint(V1_CHECKPOINT.read_bytes(), parse_specs(["time:1m@core", "volume:7", "ticks:4"]), 2 * S)

@@ -1,1 +1,10 @@
-"""Stage 3: bar specs and the accumulators that build time, tick, volume and notional bars."""
+"""Stage 3: bar specs, bar families (where a bar starts and closes), statistic groups
+(what a bar carries) and the column table.
+
+Importing this package registers the built-in families (``time``, ``ticks``,
+``volume``, ``notional``) and statistic groups (``core``, ``spread``).
+"""
+
+from barsmith.bars import core, interval, spread, threshold
+
+__all__ = ["core", "interval", "spread", "threshold"]

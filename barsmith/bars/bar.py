@@ -1,191 +1,115 @@
-"""The bar record every sink writes, and the accumulator that builds one.
+"""A bar being built (:class:`OpenBar`) and what the bars of one spec carry (:class:`BarLayout`).
 
-Spread statistics are time-weighted: the spread in effect at each instant of the
-bar's window, weighted by how long it held. Undefined periods (book resyncing, a
-side empty) and zero-length states are left out. A time bar's window is its
-interval [start, end), including the state carried in from before ``start``. An
-event bar's window is [first trade, closing trade); when that window has zero
-length, the statistics are the spread in effect at its first trade. A bar emitted
-incomplete because input ended integrates up to the last event time seen.
+An open bar is a frame -- symbol, spec, start, end, the messages and gaps among them,
+the family's progress towards its closing condition -- plus one accumulator per
+statistic group its spec carries (:mod:`barsmith.bars.group`). When it closes it
+becomes a :class:`~barsmith.bars.record.Bar`: the frame's columns, each group's, and
+``complete``.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
-from typing import Any, Final
+from collections.abc import Sequence
+from typing import Any
+
+from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, Column
+from barsmith.bars.core import CORE
+from barsmith.bars.family import BarFamily
+from barsmith.bars.group import Accumulator, StatGroup
+from barsmith.bars.record import Bar
+from barsmith.bars.spread import SPREAD
+
+__all__ = ["BAR_COLUMNS", "DEFAULT_COLUMNS", "Bar", "BarLayout", "OpenBar", "layout_columns"]
 
 
-@dataclass(slots=True)
-class Bar:
-    """One finished bar, with exactly the output columns (timestamps in ns since the epoch, UTC)."""
-
-    symbol: str
-    spec: str
-    start: int
-    end: int
-    open: float | None
-    high: float | None
-    low: float | None
-    close: float | None
-    volume: float
-    notional: float
-    vwap: float | None
-    trades: int
-    messages: int
-    gaps: int
-    bid_close: float | None
-    ask_close: float | None
-    spread_close: float | None
-    spread_mean: float | None
-    spread_min: float | None
-    spread_max: float | None
-    complete: bool
-
-    def as_dict(self) -> dict[str, Any]:
-        """The bar as a plain map in column order (for the bus sink and tests)."""
-        # Spelled out, not getattr() over BAR_COLUMNS: compiled, these are direct field
-        # reads (a test pins the keys to BAR_COLUMNS).
-        return {
-            "symbol": self.symbol,
-            "spec": self.spec,
-            "start": self.start,
-            "end": self.end,
-            "open": self.open,
-            "high": self.high,
-            "low": self.low,
-            "close": self.close,
-            "volume": self.volume,
-            "notional": self.notional,
-            "vwap": self.vwap,
-            "trades": self.trades,
-            "messages": self.messages,
-            "gaps": self.gaps,
-            "bid_close": self.bid_close,
-            "ask_close": self.ask_close,
-            "spread_close": self.spread_close,
-            "spread_mean": self.spread_mean,
-            "spread_min": self.spread_min,
-            "spread_max": self.spread_max,
-            "complete": self.complete,
-        }
+def layout_columns(groups: Sequence[StatGroup]) -> tuple[Column, ...]:
+    """The columns of a bar carrying ``groups``, in order."""
+    columns: list[Column] = list(FRAME_HEAD)
+    for group in groups:
+        columns.extend(group.columns)
+    columns.extend(FRAME_TAIL)
+    return tuple(columns)
 
 
-BAR_COLUMNS: Final[tuple[str, ...]] = tuple(f.name for f in fields(Bar))
+DEFAULT_COLUMNS: tuple[Column, ...] = layout_columns((CORE, SPREAD))
+BAR_COLUMNS: tuple[str, ...] = tuple(column.name for column in DEFAULT_COLUMNS)
+"""The columns of a bar carrying the default groups (``core`` and ``spread``)."""
+
+
+class BarLayout:
+    """What the bars of one spec carry: the family, the groups and their columns, and
+    which accumulators take which hook. ``tracker_index`` numbers the tracked
+    quantities of the whole engine (a symbol follows each once)."""
+
+    def __init__(
+        self, spec_text: str, family: BarFamily, groups: Sequence[StatGroup], tracker_index: dict[str, int]
+    ) -> None:
+        self.spec_text = spec_text
+        self.family = family
+        self.groups = tuple(groups)
+        self.columns = layout_columns(self.groups)
+        self.names = tuple(column.name for column in self.columns)
+        self.trade_accs: list[int] = [j for j, group in enumerate(self.groups) if group.on_trade]
+        self.book_accs: list[int] = [j for j, group in enumerate(self.groups) if group.on_closing_book]
+        # Per engine tracker: the (accumulator, slot) pairs that weight it by time.
+        self.held: list[list[tuple[int, int]]] = [[] for _ in tracker_index]
+        self.tracked: list[tuple[int, int, int]] = []  # (tracker, accumulator, slot), flat
+        for j, group in enumerate(self.groups):
+            for slot, tracker in enumerate(group.trackers):
+                k = tracker_index[tracker.name]
+                self.held[k].append((j, slot))
+                self.tracked.append((k, j, slot))
+
+    def new_bar(self, symbol: str, start: int, end: int, seal_at: int) -> OpenBar:
+        bar = OpenBar(self.spec_text, symbol, start, end, seal_at)
+        bar.accs = [group.accumulator() for group in self.groups]
+        return bar
+
+    def bar_from_state(self, data: list[Any]) -> OpenBar:
+        """Inverse of :meth:`OpenBar.to_state` for a bar of this layout."""
+        bar = self.new_bar(str(data[0]), int(data[1]), int(data[2]), int(data[3]))
+        bar.messages, bar.gaps, bar.progress = int(data[4]), int(data[5]), float(data[6])
+        states: list[Any] = data[7]
+        if len(states) != len(bar.accs):
+            raise ValueError(f"a bar of {self.spec_text} has {len(bar.accs)} groups, the checkpoint {len(states)}")
+        for acc, state in zip(bar.accs, states, strict=True):
+            acc.restore(state)
+        return bar
 
 
 class OpenBar:
-    """A bar being built. Hot path: plain attributes, no properties."""
+    """A bar being built: its frame, and an accumulator per statistic group."""
 
-    __slots__ = (
-        "close",
-        "closed_book",
-        "end",
-        "gaps",
-        "high",
-        "low",
-        "messages",
-        "notional",
-        "open",
-        "open_spread",
-        "spec_text",
-        "spread_area",
-        "spread_max",
-        "spread_min",
-        "spread_time",
-        "start",
-        "symbol",
-        "trades",
-        "volume",
-    )
+    __slots__ = ("accs", "end", "gaps", "messages", "progress", "seal_at", "spec_text", "start", "symbol")
 
-    def __init__(self, spec_text: str, symbol: str, start: int, end: int) -> None:
+    def __init__(self, spec_text: str, symbol: str, start: int, end: int, seal_at: int) -> None:
         self.spec_text = spec_text
         self.symbol = symbol
         self.start = start
         self.end = end
-        self.open = 0.0
-        self.high = 0.0
-        self.low = 0.0
-        self.close = 0.0
-        self.volume = 0.0
-        self.notional = 0.0
-        self.trades = 0
+        self.seal_at = seal_at  # a later message of the symbol at or after this seals the bar
         self.messages = 0
         self.gaps = 0
-        self.spread_area = 0.0
-        self.spread_time = 0
-        self.spread_min = 0.0
-        self.spread_max = 0.0
-        # Event bars: the spread when the bar opened, for a zero-length window.
-        self.open_spread: float | None = None
-        # (bid, ask, spread) frozen when a time bar is sealed before it is emitted.
-        self.closed_book: tuple[float | None, float | None, float | None] | None = None
+        self.progress = 0.0  # the family's measure towards its closing condition
+        self.accs: list[Accumulator] = []
 
-    def add_trade(self, px: float, qty: float) -> None:
-        if self.trades == 0:
-            self.open = self.high = self.low = px
-        elif px > self.high:
-            self.high = px
-        elif px < self.low:
-            self.low = px
-        self.close = px
-        self.volume += qty
-        self.notional += px * qty
-        self.trades += 1
+    def finish(self, names: tuple[str, ...], complete: bool, empty_window: bool) -> Bar:
+        """The output record. ``empty_window``: an event bar whose window has zero length."""
+        row: list[Any] = [self.symbol, self.spec_text, self.start, self.end]
+        for acc in self.accs:
+            acc.emit(row, self, empty_window)
+        row.append(complete)
+        return Bar(names, row)
 
-    def integrate(self, spread: float | None, since: int, until: int) -> None:
-        """Add the spread ``spread`` holding over [since, until), clipped to the bar's start."""
-        if spread is None:
-            return
-        begin = since if since > self.start else self.start
-        held = until - begin
-        if held <= 0:
-            return
-        if self.spread_time == 0:
-            self.spread_min = self.spread_max = spread
-        elif spread < self.spread_min:
-            self.spread_min = spread
-        elif spread > self.spread_max:
-            self.spread_max = spread
-        self.spread_area += spread * held
-        self.spread_time += held
-
-    def finish(
-        self, book_state: tuple[float | None, float | None, float | None], complete: bool, empty_window: bool
-    ) -> Bar:
-        """The output record, with the book state after the bar's last message.
-        ``empty_window``: an event bar whose spread window has zero length; its spread
-        statistics are then the spread in effect at its first trade."""
-        bid, ask, spread_close = book_state
-        traded = self.trades > 0
-        if self.spread_time > 0:
-            mean: float | None = self.spread_area / self.spread_time
-            low: float | None = self.spread_min
-            high: float | None = self.spread_max
-        elif empty_window:
-            mean = low = high = self.open_spread
-        else:
-            mean = low = high = None
-        return Bar(
-            symbol=self.symbol,
-            spec=self.spec_text,
-            start=self.start,
-            end=self.end,
-            open=self.open if traded else None,
-            high=self.high if traded else None,
-            low=self.low if traded else None,
-            close=self.close if traded else None,
-            volume=self.volume,
-            notional=self.notional,
-            vwap=self.notional / self.volume if self.volume > 0.0 else None,
-            trades=self.trades,
-            messages=self.messages,
-            gaps=self.gaps,
-            bid_close=bid,
-            ask_close=ask,
-            spread_close=spread_close,
-            spread_mean=mean,
-            spread_min=low,
-            spread_max=high,
-            complete=complete,
-        )
+    def to_state(self) -> list[Any]:
+        """The bar as plain data (its spec is known from where it is stored)."""
+        return [
+            self.symbol,
+            self.start,
+            self.end,
+            self.seal_at,
+            self.messages,
+            self.gaps,
+            self.progress,
+            [acc.to_state() for acc in self.accs],
+        ]

@@ -1,21 +1,36 @@
-"""Bar specs: ``time:<duration>``, ``ticks:<N>``, ``volume:<Q>``, ``notional:<X>``."""
+"""Bar specs: ``<family>:<argument>[@<group>,<group>...]``.
+
+The family keyword picks the sampling rule (``time:1m``, ``ticks:50``,
+``volume:5000``, ``notional:1e6``; see :mod:`barsmith.bars.family`); the optional
+``@`` list names the statistic groups its bars carry (``time:1m@core`` for lean
+bars, ``volume:5000@core,spread``). Without it, a spec carries the default groups
+(the ``bar_groups`` setting; ``core`` and ``spread`` unless changed). ``core`` is
+always carried. The text as written is the bars' ``spec`` column.
+"""
 
 from __future__ import annotations
 
 import enum
-import math
 import re
-from dataclasses import dataclass
+from collections.abc import Sequence
+from dataclasses import dataclass, field
 from typing import Final
 
-from barsmith.errors import BarSpecError, ConfigError
-from barsmith.units import parse_duration_ns
+import barsmith.bars  # noqa: F401  (registers the built-in families and groups)
+from barsmith.bars.bar import BAR_COLUMNS, DEFAULT_COLUMNS, layout_columns
+from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, Column
+from barsmith.bars.family import FAMILIES, BarFamily
+from barsmith.bars.group import GROUPS
+from barsmith.bars.interval import TimeFamily
+from barsmith.bars.threshold import ThresholdFamily
+from barsmith.errors import BarSpecError
 
-_NUMBER: Final = re.compile(r"^\s*[0-9]+(\.[0-9]*)?([eE][+-]?[0-9]+)?\s*$")
+DEFAULT_GROUPS: Final = ("core", "spread")
+ALWAYS: Final = "core"
 
 
 class BarKind(enum.Enum):
-    """The sampling rule of a bar family."""
+    """The built-in bar families, by spec keyword."""
 
     TIME = "time"
     TICKS = "ticks"
@@ -23,19 +38,31 @@ class BarKind(enum.Enum):
     NOTIONAL = "notional"
 
 
+_BUILT_IN: Final = frozenset(kind.value for kind in BarKind)
+
+
 @dataclass(frozen=True, slots=True)
 class BarSpec:
-    """One bar family. ``text`` is the spec exactly as the user wrote it (the ``spec``
-    column); ``interval_ns`` is set for time bars, ``threshold`` for the others."""
+    """One bar set. ``text`` is the spec exactly as the user wrote it (the ``spec``
+    column); ``family`` is its sampling rule and ``groups`` the statistic groups its
+    bars carry, in column order. ``interval_ns`` (time bars) and ``threshold`` (the
+    others) repeat the family's parameter for convenience."""
 
     text: str
-    kind: BarKind
+    kind: BarKind | None  # None for a family registered beyond the built-in ones
+    family: BarFamily = field(compare=False, repr=False)
+    groups: tuple[str, ...] = DEFAULT_GROUPS
     interval_ns: int = 0
     threshold: float = 0.0
 
     @property
     def is_time(self) -> bool:
-        return self.kind is BarKind.TIME
+        return self.family.closes_by_time
+
+    @property
+    def columns(self) -> tuple[Column, ...]:
+        """The columns of this spec's bars, in order (frame, groups, ``complete``)."""
+        return layout_columns([GROUPS[name] for name in self.groups])
 
     @property
     def file_stem(self) -> str:
@@ -43,36 +70,82 @@ class BarSpec:
         return re.sub(r"[^A-Za-z0-9.+-]+", "_", self.text.strip())
 
     @classmethod
-    def parse(cls, text: str) -> BarSpec:
+    def parse(cls, text: str, default_groups: Sequence[str] = DEFAULT_GROUPS) -> BarSpec:
         """Parse a spec; raises :class:`BarSpecError` with a one-line explanation."""
-        kind_text, sep, arg = text.partition(":")
-        try:
-            kind = BarKind(kind_text.strip().lower())
-        except ValueError:
-            raise BarSpecError(
-                f"bad bar spec {text!r}: expected time:<duration>, ticks:<N>, volume:<Q> or notional:<X>"
-            ) from None
+        rule, at, group_text = text.partition("@")
+        kind_text, sep, arg = rule.partition(":")
+        keyword = kind_text.strip().lower()
+        parser = FAMILIES.get(keyword)
+        if parser is None:
+            raise BarSpecError(f"bad bar spec {text!r}: expected {_forms()}")
         if not sep or not arg.strip():
-            raise BarSpecError(f"bad bar spec {text!r}: missing the value after '{kind.value}:'")
-        if kind is BarKind.TIME:
-            try:
-                return cls(text, kind, interval_ns=parse_duration_ns(arg))
-            except ConfigError as exc:
-                raise BarSpecError(f"bad bar spec {text!r}: {exc}") from None
-        if kind is BarKind.TICKS:
-            if not arg.strip().isdigit() or int(arg) <= 0:
-                raise BarSpecError(f"bad bar spec {text!r}: ticks needs a whole number of trades > 0")
-            return cls(text, kind, threshold=float(int(arg)))
-        if _NUMBER.match(arg) is None or not math.isfinite(float(arg)) or float(arg) <= 0.0:
-            raise BarSpecError(f"bad bar spec {text!r}: {kind.value} needs a number > 0")
-        return cls(text, kind, threshold=float(arg))
+            raise BarSpecError(f"bad bar spec {text!r}: missing the value after '{keyword}:'")
+        family = parser(text, arg)
+        groups = _groups(text, group_text if at else None, default_groups)
+        interval_ns = family.interval_ns if isinstance(family, TimeFamily) else 0
+        threshold = family.threshold if isinstance(family, ThresholdFamily) else 0.0
+        kind = BarKind(keyword) if keyword in _BUILT_IN else None
+        return cls(text, kind, family, groups, interval_ns, threshold)
 
 
-def parse_specs(texts: list[str]) -> list[BarSpec]:
+def _forms() -> str:
+    forms = {"time": "time:<duration>", "ticks": "ticks:<N>", "volume": "volume:<Q>", "notional": "notional:<X>"}
+    listed = [forms.get(keyword, f"{keyword}:<...>") for keyword in FAMILIES]
+    return ", ".join(listed[:-1]) + " or " + listed[-1] + " (optionally @<groups>)"
+
+
+def _groups(text: str, listed: str | None, default: Sequence[str]) -> tuple[str, ...]:
+    names = [name.strip() for name in listed.split(",")] if listed is not None else list(default)
+    if listed is not None and not any(names):
+        raise BarSpecError(f"bad bar spec {text!r}: name at least one statistic group after '@'")
+    unknown = [name for name in names if name not in GROUPS]
+    if unknown:
+        raise BarSpecError(
+            f"bad bar spec {text!r}: unknown statistic group {unknown[0]!r} (known: {', '.join(sorted(GROUPS))})"
+        )
+    if len(set(names)) != len(names):
+        raise BarSpecError(f"bad bar spec {text!r}: a statistic group is named twice")
+    ordered = [ALWAYS, *(name for name in names if name != ALWAYS)]
+    return tuple(ordered)
+
+
+__all__ = [
+    "BAR_COLUMNS",
+    "DEFAULT_COLUMNS",
+    "DEFAULT_GROUPS",
+    "BarKind",
+    "BarSpec",
+    "column_table",
+    "parse_specs",
+    "shown_columns",
+]
+
+
+def column_table() -> str:
+    """Every column barsmith can write, as a Markdown table (the README's, and
+    ``barsmith columns``): the frame first, then each statistic group's, ``complete``."""
+    lines = ["| column | group | type | null | meaning |", "|---|---|---|---|---|"]
+    rows = [("frame", c) for c in FRAME_HEAD]
+    rows += [(group.name, c) for group in GROUPS.values() for c in group.columns]
+    rows += [("frame", c) for c in FRAME_TAIL]
+    for group, column in rows:
+        null = "yes" if column.nullable else "no"
+        lines.append(f"| `{column.name}` | {group} | {column.kind} | {null} | {column.doc} |")
+    return "\n".join(lines)
+
+
+def shown_columns() -> list[str]:
+    """The columns ``barsmith show`` prints, in column order."""
+    shown = [c.name for c in FRAME_HEAD if c.show]
+    shown += [c.name for group in GROUPS.values() for c in group.columns if c.show]
+    return shown + [c.name for c in FRAME_TAIL if c.show]
+
+
+def parse_specs(texts: list[str], default_groups: Sequence[str] = DEFAULT_GROUPS) -> list[BarSpec]:
     """Parse several specs, rejecting an empty list and repeats."""
     if not texts:
         raise BarSpecError("no bar spec given (e.g. --bars time:1m)")
-    specs = [BarSpec.parse(text) for text in texts]
+    specs = [BarSpec.parse(text, default_groups) for text in texts]
     seen: set[str] = set()
     for spec in specs:
         if spec.text in seen:

@@ -20,7 +20,7 @@ Transitions::
 from __future__ import annotations
 
 import enum
-from typing import Final
+from typing import Any, Final
 
 from barsmith.ingest.ticks import ASK_PX, ASK_QTY, BID_PX, BID_QTY, Tick
 
@@ -147,3 +147,23 @@ class SymbolBook:
         ask = self.ask_px
         spread = ask - bid if bid is not None and ask is not None else None
         return bid, ask, spread
+
+    def to_state(self) -> list[Any]:
+        """The book as plain data (for checkpoints)."""
+        return [
+            self.status.value,
+            self.last_seq,
+            self.last_ts,
+            self.bid_px,
+            self.bid_qty,
+            self.ask_px,
+            self.ask_qty,
+            self.time_regressions,
+        ]
+
+    def restore(self, data: list[Any]) -> None:
+        """Inverse of :meth:`to_state`."""
+        self.status = BookStatus(data[0])
+        self.last_seq, self.last_ts = int(data[1]), int(data[2])
+        self.bid_px, self.bid_qty, self.ask_px, self.ask_qty = data[3], data[4], data[5], data[6]
+        self.time_regressions = int(data[7])

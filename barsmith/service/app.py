@@ -16,7 +16,7 @@ from collections import Counter
 from collections.abc import Callable, Sequence
 from typing import Any
 
-from barsmith.bars.bar import Bar
+from barsmith.bars.record import Bar
 from barsmith.bus.checkpoints import KafkaCheckpointBus
 from barsmith.errors import ConfigError
 from barsmith.ingest.rejects import Reject

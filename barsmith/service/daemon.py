@@ -29,7 +29,7 @@ import logging
 import time
 from collections.abc import Sequence
 
-from barsmith.bars.bar import Bar
+from barsmith.bars.record import Bar
 from barsmith.engine import Engine, EngineStats
 from barsmith.errors import SinkError
 from barsmith.runner import Runner, RunSummary

@@ -15,7 +15,7 @@ from prometheus_client import CollectorRegistry, Counter, Histogram
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-from barsmith.bars.bar import Bar
+from barsmith.bars.record import Bar
 from barsmith.engine import Engine, EngineStats
 from barsmith.service.partitions import PartitionState
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any, Protocol
 
-from barsmith.bars.bar import Bar
+from barsmith.bars.record import Bar
 from barsmith.errors import SinkError
 from barsmith.ingest.rejects import Reject
 

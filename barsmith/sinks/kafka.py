@@ -21,7 +21,7 @@ from typing import Any
 
 import msgpack
 
-from barsmith.bars.bar import Bar
+from barsmith.bars.record import Bar
 from barsmith.bus.clients import bar_producer, start_client
 from barsmith.bus.topics import ensure_topic, partition_for
 from barsmith.errors import SinkError

@@ -17,32 +17,31 @@ from typing import Any, Final
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from barsmith.bars.bar import BAR_COLUMNS, Bar
-from barsmith.bars.spec import BarSpec
+from barsmith.bars.columns import Column
+from barsmith.bars.record import Bar
+from barsmith.bars.spec import DEFAULT_COLUMNS, BarSpec
 from barsmith.errors import ConfigError, SinkError
 from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
 
 _TS: Final = pa.timestamp("ns", tz="UTC")
+# The column table's types (barsmith.bars.columns) as Arrow types; timestamps are
+# INT64 nanoseconds adjusted to UTC (Parquet format specification).
+_ARROW: Final = {
+    "string": pa.string(),
+    "timestamp": _TS,
+    "float64": pa.float64(),
+    "int64": pa.int64(),
+    "bool": pa.bool_(),
+}
 
-BAR_SCHEMA: Final = pa.schema(
-    [
-        pa.field("symbol", pa.string(), nullable=False),
-        pa.field("spec", pa.string(), nullable=False),
-        pa.field("start", _TS, nullable=False),
-        pa.field("end", _TS, nullable=False),
-        *(pa.field(name, pa.float64()) for name in ("open", "high", "low", "close")),
-        pa.field("volume", pa.float64(), nullable=False),
-        pa.field("notional", pa.float64(), nullable=False),
-        pa.field("vwap", pa.float64()),
-        *(pa.field(name, pa.int64(), nullable=False) for name in ("trades", "messages", "gaps")),
-        *(
-            pa.field(name, pa.float64())
-            for name in ("bid_close", "ask_close", "spread_close", "spread_mean", "spread_min", "spread_max")
-        ),
-        pa.field("complete", pa.bool_(), nullable=False),
-    ]
-)
-assert tuple(BAR_SCHEMA.names) == BAR_COLUMNS
+
+def bar_schema(columns: Sequence[Column]) -> pa.Schema:
+    """The Arrow schema of bars with ``columns`` (see :attr:`BarSpec.columns`)."""
+    return pa.schema([pa.field(c.name, _ARROW[c.kind], nullable=c.nullable) for c in columns])
+
+
+BAR_SCHEMA: Final = bar_schema(DEFAULT_COLUMNS)
+"""The schema of bars carrying the default groups."""
 
 REJECT_SCHEMA: Final = pa.schema(
     [
@@ -59,10 +58,15 @@ REJECT_SCHEMA: Final = pa.schema(
 assert tuple(REJECT_SCHEMA.names) == REJECT_COLUMNS
 
 
-def bars_table(bars: Sequence[Bar]) -> pa.Table:
-    """Bars as an Arrow table with :data:`BAR_SCHEMA`."""
-    columns = {name: [getattr(bar, name) for bar in bars] for name in BAR_COLUMNS}
-    return pa.Table.from_pydict(columns, schema=BAR_SCHEMA)
+def bars_table(bars: Sequence[Bar], schema: pa.Schema = BAR_SCHEMA) -> pa.Table:
+    """Bars of one spec as an Arrow table with ``schema`` (the spec's)."""
+    names = tuple(schema.names)
+    if bars and bars[0].names != names:
+        raise SinkError(f"bars of {bars[0].spec} have columns {bars[0].names}, the file {names}")
+    columns = list(zip(*(bar.values for bar in bars), strict=True)) if bars else [() for _ in names]
+    return pa.Table.from_arrays(
+        [pa.array(col, type=schema.field(i).type) for i, col in enumerate(columns)], schema=schema
+    )
 
 
 def prepare_output_dir(path: Path, replace: bool) -> None:
@@ -139,6 +143,7 @@ class ParquetBarSink:
         # rather than in the middle of a run (it takes about a second).
         bars_table([])
         self._stems = {spec.text: spec.file_stem for spec in specs}
+        self._schemas = {spec.text: bar_schema(spec.columns) for spec in specs}
         self._row_group_rows = row_group_rows
         self._max_file_rows = max_file_rows
         self._roll_interval_s = roll_interval_s
@@ -180,8 +185,8 @@ class ParquetBarSink:
             if handle is None:
                 self._counter[text] += 1
                 name = f"{self._prefix}{self._stems[text]}-{self._counter[text]:06d}.parquet"
-                handle = self._open[text] = _RollingFile(self.directory / name, BAR_SCHEMA, self._compression)
-            handle.write(bars_table(pending))
+                handle = self._open[text] = _RollingFile(self.directory / name, self._schemas[text], self._compression)
+            handle.write(bars_table(pending, self._schemas[text]))
             if handle.rows >= self._max_file_rows:
                 self._commit(text)
         except OSError as exc:
@@ -239,6 +244,18 @@ class ParquetRejectSink:
             raise SinkError(f"cannot finish {self.path}: {exc}") from exc
 
 
+def carried_bars(bars: Sequence[Bar]) -> list[Any]:
+    """Bars as plain data for a checkpoint: ``[spec, values]`` per bar, in order (the
+    columns of each spec go beside them, see :func:`carried_columns`)."""
+    return [[bar.spec, list(bar.values)] for bar in bars]
+
+
+def carried_columns(bars: Sequence[Bar]) -> dict[str, list[str]]:
+    """The column names of the carried bars, by spec (so that a restore can tell when a
+    spec's columns changed)."""
+    return {bar.spec: list(bar.names) for bar in bars}
+
+
 def stream_file_tag(stream: str) -> str:
     """``ticks[3]`` → ``ticks.p3``: a stream name that is safe in a file name."""
     topic, bracket, rest = stream.partition("[")
@@ -293,6 +310,7 @@ class ParquetPartSink:
         self.directory = directory
         bars_table([])  # pay pyarrow's lazy pandas import at start-up (see ParquetBarSink)
         self._stems = {spec.text: spec.file_stem for spec in specs}
+        self._schemas = {spec.text: bar_schema(spec.columns) for spec in specs}
         self._roll_interval_s = roll_interval_s
         self._carry_max_rows = carry_max_rows
         self._compression = compression
@@ -332,14 +350,15 @@ class ParquetPartSink:
             return {
                 "from": buffer.from_offset,
                 "parts": [],
-                "bars": [list(bar.as_dict().values()) for bar in buffer.bars],
+                "bars": carried_bars(buffer.bars),
+                "columns": carried_columns(buffer.bars),
                 "rejects": [list(r.as_row().values()) for r in buffer.rejects],
             }
         parts = []
         try:
             for text, bars in self._by_spec(buffer.bars).items():
                 name = f"{self._stems[text]}-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
-                parts.append(self._write_temp(name, bars_table(bars)))
+                parts.append(self._write_temp(name, bars_table(bars, self._schemas[text])))
             if buffer.rejects:
                 name = f"_rejects-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
                 table = pa.Table.from_pylist([r.as_row() for r in buffer.rejects], schema=REJECT_SCHEMA)
@@ -371,7 +390,7 @@ class ParquetPartSink:
             return
         self._publish_parts(state["parts"])
         buffer = self._buffers[stream] = _PartBuffer(int(state["from"]))
-        buffer.bars = [Bar(*row) for row in state["bars"]]
+        buffer.bars = self._carried(state["bars"], state.get("columns", {}))
         buffer.rejects = [Reject.from_row(dict(zip(REJECT_COLUMNS, row, strict=True))) for row in state["rejects"]]
 
     def release(self, stream: str) -> None:
@@ -385,6 +404,20 @@ class ParquetPartSink:
         if buffer is None:
             buffer = self._buffers[stream] = _PartBuffer(0)
         return buffer
+
+    def _carried(self, rows: list[Any], columns: dict[str, list[str]]) -> list[Bar]:
+        """Inverse of :func:`carried_bars`; refuses bars whose columns are not the ones
+        their spec carries now (the checkpoint would otherwise mix two definitions)."""
+        names: dict[str, tuple[str, ...]] = {}
+        for text, written in columns.items():
+            wanted = self._schemas.get(text)
+            if wanted is None or tuple(written) != tuple(wanted.names):
+                raise SinkError(
+                    f"the checkpoint carries bars of {text} with other columns than this spec has now; restore the old "
+                    "settings, or use a new consumer group and state topic to rebuild from the input"
+                )
+            names[text] = tuple(written)
+        return [Bar(names[text], values) for text, values in rows]
 
     def _by_spec(self, bars: Sequence[Bar]) -> dict[str, list[Bar]]:
         grouped: dict[str, list[Bar]] = {}

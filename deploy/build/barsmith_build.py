@@ -19,6 +19,13 @@ HOT_MODULES = [
     "barsmith/ingest/framing.py",
     "barsmith/ingest/eventtime.py",
     "barsmith/book/book.py",
+    "barsmith/bars/columns.py",
+    "barsmith/bars/group.py",
+    "barsmith/bars/core.py",
+    "barsmith/bars/spread.py",
+    "barsmith/bars/family.py",
+    "barsmith/bars/interval.py",
+    "barsmith/bars/threshold.py",
     "barsmith/bars/bar.py",
     "barsmith/engine.py",
 ]
