@@ -22,7 +22,7 @@ import msgpack
 
 from barsmith.bars.spec import BarSpec
 from barsmith.engine import Engine
-from barsmith.errors import CheckpointError
+from barsmith.errors import CheckpointError, describe_error
 from barsmith.ingest.eventtime import StreamLimits
 
 FORMAT_NAME: Final = "barsmith-engine-checkpoint"
@@ -82,6 +82,6 @@ def decode_checkpoint(
     try:
         engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
-        raise CheckpointError(f"checkpoint is damaged: {type(exc).__name__}: {exc}") from exc
+        raise CheckpointError(f"checkpoint is damaged: {describe_error(exc)}") from exc
     meta: dict[str, Any] = payload.get("meta", {})
     return engine, meta
