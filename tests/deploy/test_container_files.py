@@ -10,6 +10,7 @@ from typing import Any
 import pytest
 import yaml
 from prometheus_client import generate_latest
+from prometheus_client.parser import text_string_to_metric_families
 from pydantic import BaseModel
 
 from barsmith.engine import EngineStats
@@ -84,15 +85,21 @@ def test_dockerfile_copies_what_exists() -> None:
                 assert (ROOT / source).exists(), source
 
 
+def exposed_series() -> set[str]:
+    """Every series name the service's registry can expose, samples or not yet (a
+    per-partition gauge has none until partitions are assigned)."""
+    metrics = ServiceMetrics(PartitionView(EngineStats, dict, dict))
+    suffixes = {"counter": ["_total"], "histogram": ["_bucket", "_sum", "_count"], "gauge": [""]}
+    return {
+        family.name + suffix
+        for family in text_string_to_metric_families(generate_latest(metrics.registry).decode())
+        for suffix in suffixes.get(family.type, [""])
+    }
+
+
 def test_dashboard_queries_only_exposed_metrics() -> None:
-    stats = EngineStats()
-    stats.rejected["not_a_map"] = 1
-    metrics = ServiceMetrics(PartitionView(lambda: stats, dict, dict))
-    metrics.bars.labels(spec="time:1m", sink="bus").inc()
-    metrics.sink_errors.labels(sink="bus")
-    metrics.publish_delay.observe(0.01)
-    exposed = set(re.findall(r"^(barsmith_\w+)", generate_latest(metrics.registry).decode(), re.M))
-    exposed |= {"barsmith_consumer_lag_messages", "barsmith_watermark_seconds"}  # per partition, when assigned
+    exposed = exposed_series()
+    assert {"barsmith_consumer_lag_records", "barsmith_key_mismatches_total", "barsmith_bars_closed_total"} <= exposed
     dashboard = json.loads((DEPLOY / "grafana" / "dashboards" / "barsmith.json").read_text())
     used = {
         name

@@ -176,12 +176,12 @@ async def test_service_builds_the_bars_replay_builds(kafka_bootstrap: str, tmp_p
     assert metrics[("barsmith_messages_total", (("outcome", "late"),))] == stats.late
     for reason, count in stats.rejected.items():
         assert metrics[("barsmith_rejects_total", (("reason", reason),))] == count
-    lags = [v for (name, _), v in metrics.items() if name == "barsmith_consumer_lag_messages"]
+    lags = [v for (name, _), v in metrics.items() if name == "barsmith_consumer_lag_records"]
     assert len(lags) == 8 and all(v == 0 for v in lags)
     assert sum(v for (n, _), v in metrics.items() if n == "barsmith_watermark_seconds") > 0
     # Bars counted at scrape time are those closed so far (the rest close at shutdown).
     for spec in SPECS:
-        assert metrics[("barsmith_bars_built_total", (("spec", spec),))] <= stats.bars[spec]
+        assert metrics[("barsmith_bars_closed_total", (("spec", spec),))] <= stats.bars[spec]
 
     expected = await asyncio.to_thread(replay_frame, DEMO, tmp_path / "replay")
     closed = expected[expected["complete"]].reset_index(drop=True)
