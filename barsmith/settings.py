@@ -94,13 +94,18 @@ class CheckpointSettings(BaseModel):
     every_messages: int = Field(200_000, gt=0, description="...and after this many messages, whichever first")
 
 
+# Outside the 9100-9999 range that Prometheus' list of exporter ports has filled, and
+# away from the defaults of common exporters and client libraries (9464, 8000, 2112).
+DEFAULT_METRICS_PORT = 17365
+
+
 class MetricsSettings(BaseModel):
     """The HTTP endpoint with /metrics, /healthz and /readyz."""
 
     model_config = ConfigDict(extra="forbid")
 
     host: str = "127.0.0.1"
-    port: int | None = Field(9464, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
+    port: int | None = Field(DEFAULT_METRICS_PORT, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
 
 
 class Delivery(StrEnum):

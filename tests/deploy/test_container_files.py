@@ -15,7 +15,7 @@ from pydantic import BaseModel
 
 from barsmith.engine import EngineStats
 from barsmith.service.metrics import PartitionView, ServiceMetrics
-from barsmith.settings import Settings, load_settings
+from barsmith.settings import DEFAULT_METRICS_PORT, Settings, load_settings
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 ROOT = DEPLOY.parent
@@ -76,6 +76,23 @@ def test_ports_and_addresses_agree() -> None:
     publish = services["publisher"]["command"]
     assert publish[publish.index("--topic") + 1] == "ticks"
     assert (ROOT / publish[1].lstrip("/")).is_file()
+
+
+def test_the_containers_use_the_default_metrics_port() -> None:
+    """One port everywhere: the default, the compose file, Prometheus' target and the image."""
+    assert int(barsmith_env()["BARSMITH_METRICS__PORT"]) == DEFAULT_METRICS_PORT
+    assert f"BARSMITH_METRICS__PORT={DEFAULT_METRICS_PORT}" in (DEPLOY / "Dockerfile").read_text()
+    example = (ROOT / "config" / "barsmith.example.toml").read_text()
+    assert f"port = {DEFAULT_METRICS_PORT}" in example
+
+
+def test_the_default_metrics_port_is_no_common_exporters_default() -> None:
+    """Prometheus' list of default exporter ports (its wiki, from memory) fills 9100-9999;
+    9464 is the OpenTelemetry Prometheus exporter's, 8000 and 2112 those of client-library
+    examples, 9090-9094 Prometheus, Pushgateway, Alertmanager and Kafka, 19092 our broker."""
+    assert not 9_000 <= DEFAULT_METRICS_PORT <= 9_999
+    assert DEFAULT_METRICS_PORT not in {2112, 3000, 4317, 4318, 8000, 8080, 10250, 19092}
+    assert DEFAULT_METRICS_PORT < 32_768  # below Linux's ephemeral ports, so never taken by chance
 
 
 def test_dockerfile_copies_what_exists() -> None:
