@@ -86,6 +86,13 @@ class KafkaSettings(BaseModel):
     session_timeout_ms: int = Field(10_000, ge=1_000, le=300_000, description="group member declared dead after")
     state_topic: str | None = Field(None, description="checkpoints (compacted); default <group_id>.barsmith-state")
     state_partitions: int = Field(8, gt=0, description="partitions if the service creates the state topic")
+    replication_factor: int | None = Field(
+        None,
+        ge=1,
+        le=32_767,
+        description="replicas of each topic barsmith creates (output, state; publish's input); "
+        "unset: the broker's default.replication.factor",
+    )
     transaction_timeout_ms: int = Field(60_000, ge=1_000, le=900_000)
     security: SecuritySettings = Field(default_factory=SecuritySettings)
 
