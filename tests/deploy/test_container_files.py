@@ -75,6 +75,9 @@ def test_ports_and_addresses_agree() -> None:
     assert topic_cmd[topic_cmd.index("--partitions") + 1] == "8"
     publish = services["publisher"]["command"]
     assert publish[publish.index("--topic") + 1] == "ticks"
+    # Live data for the demo: real-time pace, event times shifted to now (the idle rule and
+    # the delay panels need event time near the wall clock; the wall-clock guard allows it).
+    assert publish[publish.index("--speed") + 1] == "1" and "--shift-to-now" in publish
     assert (ROOT / publish[1].lstrip("/")).is_file()
 
 
