@@ -23,7 +23,7 @@ from barsmith.replay import replay_files
 from barsmith.service.app import build_service
 from barsmith.settings import KafkaSettings, load_settings
 from barsmith.tools.feeds import publish_feed, record_topic
-from barsmith.tools.synth import SynthConfig, write_feed
+from barsmith.tools.synth import SynthConfig, generate, write_feed
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "demo_feeds" / "kestrelmoor-evening.msgpack.gz"
@@ -282,10 +282,10 @@ async def test_record_then_replay_round_trip(kafka_bootstrap: str, small_feed: P
 # -- helpers ---------------------------------------------------------------------------
 
 
-async def _create_topic(bootstrap: str, topic: str) -> None:
+async def _create_topic(bootstrap: str, topic: str, partitions: int = 8) -> None:
     from barsmith.bus import ensure_topic
 
-    await ensure_topic(kafka(bootstrap), topic, 8)
+    await ensure_topic(kafka(bootstrap), topic, partitions)
 
 
 def _wait_ready(ports: list[int], proc: subprocess.Popen[str]) -> None:
@@ -331,3 +331,70 @@ async def test_idle_rule_closes_bars_of_a_quiet_partition(kafka_bootstrap: str, 
     # Without the idle rule the last ~2 s of bars (within the lateness of the last tick)
     # could only have been flushed at shutdown, marked incomplete.
     assert bars["complete"].all()
+
+
+def test_publish_shift_to_now_starts_the_feed_now_and_keeps_its_spacing(kafka_bootstrap: str, tmp_path: Path) -> None:
+    """``barsmith publish --shift-to-now``: one offset added to every event time, so the
+    first tick is stamped about when it is sent and every interval of the feed is kept."""
+    from barsmith.cli import main
+
+    config = SynthConfig(messages=3_000, symbols=4, duration_s=300, malformed=2, seed=9)
+    feed = tmp_path / "dated.msgpack"
+    write_feed(feed, config)
+    original = {(t["sym"], t["seq"]): t["ts"] for t in generate(config)}
+    before = time.time_ns()
+    args = ["publish", str(feed), "--bootstrap", kafka_bootstrap, "--topic", "shifted-ticks", "--partitions", "2"]
+    assert main([*args, "--shift-to-now"]) == 0
+    published: dict[tuple[str, int], int] = {}
+    for record in asyncio.run(read_records(kafka_bootstrap, "shifted-ticks")):
+        value = msgpack.unpackb(record.value)
+        for t in value if isinstance(value, list) else [value]:
+            if isinstance(t, dict) and isinstance(t.get("ts"), int) and isinstance(t.get("seq"), int):
+                published[(t["sym"], t["seq"])] = t["ts"]
+    assert published.keys() == original.keys()
+    shifts = {published[key] - original[key] for key in original}
+    assert len(shifts) == 1  # one offset for all: the spacing is kept to the nanosecond
+    first = min(original, key=lambda key: original[key])
+    # The feed's first tick is stamped with the wall clock at about the moment it was sent.
+    assert before - 1_000_000_000 <= published[first] <= time.time_ns()
+    assert published[first] - before < 10 * 1_000_000_000
+
+
+async def test_a_key_other_than_the_symbol_is_counted_and_the_value_decides(
+    kafka_bootstrap: str, tmp_path: Path
+) -> None:
+    """README, "The live service": the key only placed the record; the value's sym decides
+    its symbol, and a record keyed by none of its ticks' symbols is counted."""
+    from aiokafka import AIOKafkaProducer
+    from prometheus_client import generate_latest
+
+    topic = "keyed-ticks"
+    await _create_topic(kafka_bootstrap, topic, partitions=1)
+    t0 = 1_798_794_000_000_000_000
+    fen = [{"sym": "FENWORTH.KMX", "ts": t0 + i * 10**9, "seq": i + 1, "kind": "delta",
+            "trade_px": 10.0, "trade_qty": 1.0} for i in range(6)]  # fmt: skip
+    mar = {"sym": "MARROWAY.KMX", "ts": t0, "seq": 1, "kind": "delta", "trade_px": 20.0, "trade_qty": 2.0}
+    sends = [
+        (b"FENWORTH.KMX", fen[0]),
+        (b"MARROWAY.KMX", fen[1]),  # another symbol's key: counted
+        (b"QUILLFERN.KMX", fen[2]),  # counted
+        (b"MARROWAY.KMX", [fen[3], mar]),  # a batch keyed by one of its symbols: fine
+        (b"QUILLFERN.KMX", [fen[4], mar | {"seq": 2}]),  # none of them: counted
+        (None, fen[5]),  # no key: nothing to compare
+    ]
+    producer = AIOKafkaProducer(bootstrap_servers=kafka_bootstrap)
+    await producer.start()
+    try:
+        for key, value in sends:
+            await producer.send_and_wait(topic, msgpack.packb(value), key=key, partition=0)
+    finally:
+        await producer.stop()
+    settings = service_settings(kafka_bootstrap, topic, bars=["volume:1000"], parquet={"dir": tmp_path / "service"})
+    runner = build_service(settings)
+    summary = await runner.serve()
+    assert summary.stats.accepted == 8
+    text = generate_latest(runner.metrics.registry).decode()
+    assert samples(text)[("barsmith_key_mismatches_total", (("partition", f"{topic}[0]"),))] == 3
+    bars = pd.read_parquet(tmp_path / "service")
+    # Every tick landed on its own symbol, whatever its key said.
+    assert bars.groupby("symbol")["trades"].sum().to_dict() == {"FENWORTH.KMX": 6, "MARROWAY.KMX": 2}
