@@ -398,3 +398,27 @@ async def test_a_key_other_than_the_symbol_is_counted_and_the_value_decides(
     bars = pd.read_parquet(tmp_path / "service")
     # Every tick landed on its own symbol, whatever its key said.
     assert bars.groupby("symbol")["trades"].sum().to_dict() == {"FENWORTH.KMX": 6, "MARROWAY.KMX": 2}
+
+
+async def test_the_readme_reads_the_bus_as_it_shows(kafka_bootstrap: str, small_feed: Path) -> None:
+    """The README's aiokafka example, run as written (only the broker and topic changed),
+    prints every committed bar: its spec header, symbol and integer-ns start."""
+    from factories import readme_blocks
+
+    await publish_feed([small_feed], kafka(kafka_bootstrap), "readme-ticks", partitions=8)
+    settings = service_settings(kafka_bootstrap, "readme-ticks", kafka={"output_topic": "readme-bars"})
+    await build_service(settings).serve()
+    expected = await read_records(kafka_bootstrap, "readme-bars")
+    (block,) = [b for b in readme_blocks("python") if "AIOKafkaConsumer" in b]
+    assert 'isolation_level="read_committed"' in block
+    code = block.replace('"127.0.0.1:19092"', repr(kafka_bootstrap)).replace(
+        'topic: str = "bars"', 'topic: str = "readme-bars"'
+    )
+    done = await asyncio.to_thread(
+        subprocess.run, [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=False
+    )
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
+    assert len(lines) == len(expected) > 0
+    spec, symbol, day, clock = lines[0].split()[:4]
+    assert spec in SPECS and symbol.endswith(".KMX") and day.startswith("2027-01-01") and clock.endswith("+00:00")
