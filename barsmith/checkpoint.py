@@ -31,7 +31,7 @@ import msgpack
 from barsmith.bars.family import NEVER
 from barsmith.bars.spec import BAR_COLUMNS, DEFAULT_GROUPS, BarSpec
 from barsmith.engine import Engine
-from barsmith.errors import CheckpointError
+from barsmith.errors import CheckpointError, describe_error
 from barsmith.ingest.eventtime import UNCONFIRMED, StreamLimits
 
 FORMAT_NAME: Final = "barsmith-engine-checkpoint"
@@ -99,7 +99,7 @@ def decode_checkpoint(
             _upgrade_from_1(payload, specs, limits or StreamLimits())
         engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
-        raise CheckpointError(f"checkpoint is damaged: {type(exc).__name__}: {exc}") from exc
+        raise CheckpointError(f"checkpoint is damaged: {describe_error(exc)}") from exc
     meta: dict[str, Any] = payload.get("meta", {})
     return engine, meta
 

@@ -45,3 +45,13 @@ class CheckpointError(BarsmithError):
 
 class StateError(BarsmithError):
     """An impossible state transition; the message names the symbol and position."""
+
+
+def describe_error(exc: BaseException) -> str:
+    """A third-party exception as words for a message: ``"FormatError: bad header"``,
+    or just the type's name when the exception says nothing more (never ``"X: "``)."""
+    text = str(exc).strip()
+    name = type(exc).__name__
+    if not text or text == name:
+        return name
+    return text if text.startswith(f"{name}:") else f"{name}: {text}"

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 
 from barsmith.runner import ProgressHook, Runner, RunSummary
@@ -22,15 +22,20 @@ def replay_files(
     replace: bool = False,
     partitions: int = 1,
     progress: ProgressHook | None = None,
+    flags: Mapping[str, str] | None = None,
 ) -> RunSummary:
     """Replay ``files`` (in order, as one stream) into Parquet under ``out_dir``.
 
     Bars go to ``<spec>-<n>.parquet`` files (``pandas.read_parquet(out_dir)`` reads
     them all) and rejected records to ``_rejects.parquet``. ``partitions > 1`` builds
     bars per bus partition, as the live service does. Raises
-    :class:`~barsmith.errors.ConfigError` for bad settings, specs or paths.
+    :class:`~barsmith.errors.ConfigError` for bad settings, specs or paths (``flags``:
+    the command-line flags that gave ``bars`` and ``lateness_ms``, by setting name, for
+    its message; see :func:`~barsmith.settings.load_settings`).
     """
-    settings = load_settings(config_file, bars=list(bars) if bars is not None else None, lateness_ms=lateness_ms)
+    settings = load_settings(
+        config_file, flags=flags, bars=list(bars) if bars is not None else None, lateness_ms=lateness_ms
+    )
     specs = settings.bar_specs()
     source = FileSource(files, partitions=partitions)
     out = Path(out_dir)

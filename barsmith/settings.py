@@ -8,10 +8,14 @@ Cheap checks happen when the object is built; every problem is reported at once 
 
 from __future__ import annotations
 
+import difflib
+import json
 import os
+import tomllib
+from collections.abc import Mapping, Sequence
 from enum import StrEnum
 from pathlib import Path
-from typing import Any, Literal
+from typing import Any, Literal, get_origin
 
 from pydantic import (
     BaseModel,
@@ -27,6 +31,7 @@ from pydantic_settings import (
     BaseSettings,
     PydanticBaseSettingsSource,
     SettingsConfigDict,
+    SettingsError,
     TomlConfigSettingsSource,
 )
 
@@ -90,6 +95,13 @@ class KafkaSettings(BaseModel):
     session_timeout_ms: int = Field(10_000, ge=1_000, le=300_000, description="group member declared dead after")
     state_topic: str | None = Field(None, description="checkpoints (compacted); default <group_id>.barsmith-state")
     state_partitions: int = Field(8, gt=0, description="partitions if the service creates the state topic")
+    replication_factor: int | None = Field(
+        None,
+        ge=1,
+        le=32_767,
+        description="replicas of each topic barsmith creates (output, state; publish's input); "
+        "unset: the broker's default.replication.factor",
+    )
     transaction_timeout_ms: int = Field(60_000, ge=1_000, le=900_000)
     security: SecuritySettings = Field(default_factory=SecuritySettings)
 
@@ -103,13 +115,18 @@ class CheckpointSettings(BaseModel):
     every_messages: int = Field(200_000, gt=0, description="...and after this many messages, whichever first")
 
 
+# Outside the 9100-9999 range that Prometheus' list of exporter ports has filled, and
+# away from the defaults of common exporters and client libraries (9464, 8000, 2112).
+DEFAULT_METRICS_PORT = 17365
+
+
 class MetricsSettings(BaseModel):
     """The HTTP endpoint with /metrics, /healthz and /readyz."""
 
     model_config = ConfigDict(extra="forbid")
 
     host: str = "127.0.0.1"
-    port: int | None = Field(9464, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
+    port: int | None = Field(DEFAULT_METRICS_PORT, ge=0, le=65_535, description="unset: no endpoint; 0: any free port")
 
 
 class Delivery(StrEnum):
@@ -256,32 +273,215 @@ def _ns(seconds: float) -> int:
 _TOML_FILE: dict[str, Path | None] = {"path": None}
 
 
-def load_settings(config_file: str | os.PathLike[str] | None = None, **overrides: Any) -> Settings:
+def load_settings(
+    config_file: str | os.PathLike[str] | None = None, *, flags: Mapping[str, str] | None = None, **overrides: Any
+) -> Settings:
     """Build settings from an optional TOML file, the environment and CLI overrides
     (``None`` overrides are ignored; nested sections are given as dicts and merged
     into the file's and environment's values). Raises :class:`ConfigError` listing
-    every problem."""
+    every problem, each naming where its value came from: ``flags`` maps a setting's
+    dotted name to the command-line flag that carried it (``{"metrics.port":
+    "--metrics-port"}``), otherwise the environment variable or the TOML file."""
     path = Path(config_file) if config_file is not None else None
     if path is not None and not path.is_file():
         raise ConfigError(f"config file not found: {path}")
+    given = {k: v for k, v in overrides.items() if v is not None}
+    origins = SettingOrigins(given, flags or {}, os.environ, path)
     _TOML_FILE["path"] = path
     try:
-        return Settings(**{k: v for k, v in overrides.items() if v is not None})
+        settings = Settings(**given)
     except ValidationError as exc:
-        raise ConfigError(format_validation_error(exc)) from None
+        raise ConfigError(format_validation_error(exc, origins, origins.unknown_sections())) from None
+    except SettingsError as exc:  # an environment variable that is not the JSON its setting needs
+        raise ConfigError(origins.explain_unparsed(exc)) from None
     except ValueError as exc:  # a TOML syntax error
         raise ConfigError(f"cannot read {path}: {exc}") from None
     finally:
         _TOML_FILE["path"] = None
+    problems = origins.unknown_sections()
+    if problems:
+        raise ConfigError(_listed(problems))
+    return settings
 
 
-def format_validation_error(exc: ValidationError) -> str:
-    """One line for one problem; otherwise a heading and one line per problem."""
+class SettingOrigins:
+    """Where the values being validated came from, for error messages. Precedence,
+    highest first: flags (the caller's overrides), ``BARSMITH_*`` environment
+    variables, the TOML file; a value none of them gave is a default."""
+
+    def __init__(
+        self, given: Mapping[str, Any], flags: Mapping[str, str], environ: Mapping[str, str], toml_file: Path | None
+    ) -> None:
+        self._given = given
+        self._flags = flags
+        self._environ = {name.upper(): name for name in environ if name.upper().startswith(_ENV_PREFIX)}
+        self._values = environ
+        self._toml_file = toml_file
+        self._toml: dict[str, Any] | None = None
+
+    def of(self, path: Sequence[str]) -> str | None:
+        """Where the value at ``path`` came from (``None``: a default)."""
+        if _supplies(self._given, path):
+            flag = next((self._flags[p] for p in _prefixes(path) if p in self._flags), None)
+            return f"flag {flag}" if flag else "the caller's arguments"
+        for prefix in _prefixes(path):
+            name = self._environ.get(_ENV_PREFIX + prefix.upper().replace(".", "__"))
+            if name is not None:
+                return f"environment variable {name}"
+        if self._toml_file is not None and _supplies(self._toml_data(), path):
+            return f"config file {self._toml_file}"
+        return None
+
+    def unknown_sections(self) -> list[str]:
+        """Nested variables (``BARSMITH_X__Y``) of a section that does not exist: the
+        settings library ignores them, so a typo would go unnoticed."""
+        problems = []
+        for upper, name in sorted(self._environ.items()):
+            parts = upper.removeprefix(_ENV_PREFIX).lower().split("__")
+            if len(parts) > 1 and parts[0] not in Settings.model_fields:
+                problems.append(_unknown(parts, f"environment variable {name}"))
+        return problems
+
+    def explain_unparsed(self, exc: SettingsError) -> str:
+        """An environment variable whose value is not JSON although its setting needs a
+        list or a section."""
+        bad = []
+        for upper, name in sorted(self._environ.items()):
+            parts = upper.removeprefix(_ENV_PREFIX).lower().split("__")
+            if _is_structured(_annotation_at(parts)):
+                try:
+                    json.loads(self._values[name])
+                except ValueError:
+                    bad.append(
+                        f"{'.'.join(parts)}: not JSON (from environment variable {name}); lists and sections "
+                        """are written as JSON, e.g. '["k1:9092", "k2:9092"]'"""
+                    )
+        return _listed(bad) if bad else f"the BARSMITH_* environment variables: {exc}"
+
+    def _toml_data(self) -> dict[str, Any]:
+        if self._toml is None:
+            assert self._toml_file is not None
+            with self._toml_file.open("rb") as handle:
+                self._toml = tomllib.load(handle)
+        return self._toml
+
+
+_ENV_PREFIX = "BARSMITH_"
+_SECRET_WORDS = ("password", "secret")
+
+
+def _prefixes(path: Sequence[str]) -> list[str]:
+    """``a.b.c``, ``a.b``, ``a``: the setting and the sections holding it, most specific first."""
+    return [".".join(path[:n]) for n in range(len(path), 0, -1)]
+
+
+def _supplies(tree: Mapping[str, Any], path: Sequence[str]) -> bool:
+    """Whether ``tree`` (nested dicts) gives a value at ``path``, or a non-section value
+    on the way there (the value being validated)."""
+    node: Any = tree
+    for part in path:
+        if not isinstance(node, Mapping):
+            return True
+        if part not in node:
+            return False
+        node = node[part]
+    return True
+
+
+def _annotation_at(path: Sequence[str]) -> Any:
+    """The declared type of the setting at ``path``, or None when there is no such setting."""
+    model: Any = Settings
+    annotation: Any = None
+    for part in path:
+        if not (isinstance(model, type) and issubclass(model, BaseModel)) or part not in model.model_fields:
+            return None
+        annotation = model.model_fields[part].annotation
+        model = annotation
+    return annotation
+
+
+def _is_structured(annotation: Any) -> bool:
+    if annotation is None:
+        return False
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return True
+    return get_origin(annotation) in (list, dict)
+
+
+def _unknown(path: Sequence[str], origin: str | None) -> str:
+    """ "unknown setting `a.b`", with where it came from and the nearest known name."""
+    # The first part that names no setting.
+    depth = next((n for n in range(len(path)) if _annotation_at(path[: n + 1]) is None), len(path) - 1)
+    parent = _annotation_at(path[:depth]) if depth else Settings
+    known = list(parent.model_fields) if isinstance(parent, type) and issubclass(parent, BaseModel) else []
+    hint = difflib.get_close_matches(path[depth], known, n=1)
+    notes = [f"from {origin}"] if origin else []
+    if hint:
+        notes.append(f"did you mean `{'.'.join([*path[:depth], hint[0], *path[depth + 1 :]])}`?")
+    return f"unknown setting `{'.'.join(path)}`" + (f" ({'; '.join(notes)})" if notes else "")
+
+
+# What a failed check means, in barsmith's words (by the validation library's error type).
+_PROBLEMS: dict[str, str] = {
+    "greater_than": "must be more than {gt}",
+    "greater_than_equal": "must be at least {ge}",
+    "less_than": "must be less than {lt}",
+    "less_than_equal": "must be at most {le}",
+    "int_parsing": "must be a whole number",
+    "int_type": "must be a whole number",
+    "int_from_float": "must be a whole number",
+    "float_parsing": "must be a number",
+    "float_type": "must be a number",
+    "bool_parsing": "must be true or false",
+    "bool_type": "must be true or false",
+    "string_type": "must be text",
+    "list_type": "must be a list",
+    "dict_type": "must be a section (a table of keys)",
+    "model_type": "must be a section (a table of keys)",
+    "literal_error": "must be {expected}",
+    "enum": "must be {expected}",
+    "missing": "is required",
+    "json_invalid": "is not valid JSON",
+}
+
+
+def format_validation_error(
+    exc: ValidationError, origins: SettingOrigins | None = None, more: Sequence[str] = ()
+) -> str:
+    """Every problem of ``exc`` (and ``more``) in barsmith's words, each naming the
+    setting, what is wrong, the value given (never a secret's) and where it came from:
+    one line for one problem; otherwise a heading and one line per problem."""
     problems = []
     for error in exc.errors():
-        where = ".".join(str(p) for p in error["loc"]) or "settings"
-        message = str(error["msg"]).removeprefix("Value error, ")
-        problems.append(f"{where}: {message}")
+        path = [str(p) for p in error["loc"] if isinstance(p, str)]
+        origin = origins.of(path) if origins is not None and path else None
+        if error["type"] == "extra_forbidden":
+            problems.append(_unknown(path, origin))
+            continue
+        template = _PROBLEMS.get(error["type"])
+        ctx = error.get("ctx") or {}
+        try:
+            problem = template.format(**ctx) if template else None
+        except (KeyError, IndexError):
+            problem = None
+        if problem is None:
+            problem = str(error["msg"]).removeprefix("Value error, ")
+        value = error.get("input")
+        if error["type"] != "value_error" and _shown(path, value):
+            problem += f", got {value!r}"
+        where = ".".join(path) or "settings"
+        problems.append(f"{where}: {problem}" + (f" (from {origin})" if origin else ""))
+    return _listed([*problems, *more])
+
+
+def _shown(path: Sequence[str], value: Any) -> bool:
+    """Whether a rejected value may be quoted back: a short scalar, and never a secret's."""
+    if any(word in part for part in path for word in _SECRET_WORDS):
+        return False
+    return isinstance(value, (str, int, float, bool)) and len(repr(value)) <= 80
+
+
+def _listed(problems: Sequence[str]) -> str:
     if len(problems) == 1:
         return problems[0]
     return f"{len(problems)} problems in the settings:\n" + "\n".join(f"  - {p}" for p in problems)

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gzip
+import re
 import socket
 from collections.abc import Iterable, Sequence
 from pathlib import Path
@@ -96,3 +97,12 @@ def feeds(draw: st.DrawFn) -> list[dict[str, Any]]:
             rec.update(trade_px=draw(st.integers(90, 110)) * 1.0, trade_qty=float(draw(st.integers(1, 20))))
         recs.append(rec)
     return recs
+
+
+README = Path(__file__).resolve().parents[1] / "README.md"
+
+
+def readme_blocks(language: str, text: str | None = None) -> list[str]:
+    """The fenced code blocks of the README (or of ``text``) in ``language``, in order."""
+    source = README.read_text() if text is None else text
+    return re.findall(rf"^```{language}\n(.*?)^```$", source, flags=re.M | re.S)

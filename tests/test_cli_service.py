@@ -3,9 +3,14 @@
 from __future__ import annotations
 
 import json
+import os
 import signal
+import subprocess
+import sys
+from pathlib import Path
 
 import pytest
+from factories import free_port_pair
 
 from barsmith.cli import main
 from barsmith.runner import Runner
@@ -13,6 +18,7 @@ from barsmith.sinks.base import MemorySink
 from barsmith.sources.base import ListSource
 
 CONFIG = "config/barsmith.example.toml"
+ROOT = Path(__file__).resolve().parents[1]
 
 
 def test_config_check_prints_effective_settings_with_secrets_masked(
@@ -70,3 +76,39 @@ def test_workers_get_their_command_lines_from_the_cli() -> None:
         _worker_commands(argv, 3, 0)
         == [[sys.executable, "-m", "barsmith", "run", "--metrics-port", "0", "--workers", "1"]] * 3
     )
+
+
+@pytest.mark.parametrize(
+    "command",
+    [
+        ["run", "--output-topic", "bars", "--metrics-port", "0"],
+        ["run", "--output-topic", "bars", "--metrics-port", "0", "--delivery", "at-least-once"],
+        ["publish", "demo_feeds/kestrelmoor-evening.msgpack.gz", "--topic", "ticks"],
+        ["record", "--topic", "ticks", "--out", "unused.msgpack"],
+    ],
+    ids=["run", "run-at-least-once", "publish", "record"],
+)
+def test_kafka_unreachable_is_one_barsmith_line_naming_the_servers(command: list[str], tmp_path: Path) -> None:
+    """No broker listens: exit 1 with one line in barsmith's words that names the bootstrap
+    servers; no Python reprs, and none of the Kafka client's own error lines before it."""
+    port = free_port_pair()  # free: nothing listens there
+    servers = f"127.0.0.1:{port}"
+    done = subprocess.run(
+        [sys.executable, "-m", "barsmith", *command, "--bootstrap", servers],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        timeout=120,
+        check=False,
+        env=dict(os.environ, BARSMITH_PARQUET__DIR=str(tmp_path)),
+    )
+    assert done.returncode == 1, done.stderr
+    lines = done.stderr.strip().splitlines()
+    name = command[0]
+    assert lines[-1] == (
+        f"barsmith {name}: failed: cannot reach Kafka at {servers} (the admin client could not start): "
+        "connection refused"
+    )
+    for line in lines[:-1]:  # only barsmith's own log lines before it (the metrics endpoint)
+        assert " barsmith." in line and "aiokafka" not in line, line
+    assert "Traceback" not in done.stderr and "<" not in done.stderr

@@ -140,3 +140,27 @@ def test_console_script_prints_a_summary(synth_feed: Path, tmp_path: Path) -> No
 def test_argparse_usage_error_is_exit_2() -> None:
     done = subprocess.run([sys.executable, "-m", "barsmith", "replay"], capture_output=True, text=True, check=False)
     assert done.returncode == 2 and "error" in done.stderr
+
+
+def test_reject_details_say_what_went_wrong_without_empty_parentheses(synth_feed: Path, tmp_path: Path) -> None:
+    """Every kind of malformed record the generator makes, plus bytes msgpack refuses
+    with an exception that carries no message: each detail is words, never "X: " or "()"."""
+    garbage = tmp_path / "garbage.msgpack"
+    good = msgpack.packb(trade("FENWORTH.KMX", T0, 1, 10.0, 1.0))
+    garbage.write_bytes(good + b"\xc1\xc1\xc1" + good)  # 0xc1: never used, msgpack's FormatError says nothing
+    for feed, name in ((synth_feed, "synth"), (garbage, "garbage")):
+        assert replay(str(feed), "--bars", "time:1m", "--out", str(tmp_path / name)) == 0
+        details = pd.read_parquet(tmp_path / name / "_rejects.parquet")["detail"]
+        assert len(details) > 0
+        for detail in details:
+            assert "()" not in detail and ": )" not in detail and not detail.rstrip().endswith(":"), detail
+    assert "(FormatError)" in set(pd.read_parquet(tmp_path / "garbage" / "_rejects.parquet")["detail"]).pop()
+
+
+def test_describe_error_never_leaves_an_empty_message() -> None:
+    from barsmith.errors import describe_error
+
+    assert describe_error(ValueError()) == "ValueError"
+    assert describe_error(ValueError("  ")) == "ValueError"
+    assert describe_error(ValueError("bad header")) == "ValueError: bad header"
+    assert describe_error(KeyError("sym")) == "KeyError: 'sym'"

@@ -10,9 +10,13 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import logging
+import os
+import socket
+import ssl
 from typing import Any
 
-from barsmith.errors import BarsmithError, InputError
+from barsmith.errors import BarsmithError, InputError, describe_error
 from barsmith.settings import KafkaSettings
 
 _STOP_TIMEOUT_S = 10.0
@@ -79,15 +83,107 @@ def new_admin(kafka: KafkaSettings, client_id: str) -> Any:
 
 async def start_client(client: Any, kafka: KafkaSettings, what: str, error: type[BarsmithError] = InputError) -> None:
     """Start ``client`` (``what`` names it for the message); when the bus refuses, stop
-    it again and raise ``error``, the Kafka error chained."""
+    it again and raise ``error`` — one line in barsmith's words naming the bootstrap
+    servers, the Kafka error chained. While it starts, the client library's own log
+    lines are held back: on failure the error says it all, on success they are let
+    through."""
     from aiokafka.errors import KafkaError
 
-    try:
-        await client.start()
-    except KafkaError as exc:
-        await stop_client(client)
-        servers = ", ".join(kafka.bootstrap_servers)
-        raise error(f"cannot reach Kafka at {servers} ({what}): {exc}") from exc
+    with _HeldClientLogs() as held:
+        try:
+            await client.start()
+        except KafkaError as exc:
+            await stop_client(client)
+            servers = ", ".join(kafka.bootstrap_servers)
+            reason = _unreachable_reason(exc, held.exceptions())
+            raise error(f"cannot reach Kafka at {servers} (the {what} could not start): {reason}") from exc
+        held.release()
+
+
+class _HeldClientLogs:
+    """Holds back the records of the ``aiokafka`` loggers (nested uses share one
+    handler). ``release()`` passes them on to the usual handlers; otherwise they are
+    dropped when the last use ends."""
+
+    _depth = 0
+    _handler: _Holding | None = None
+    _propagate = True
+
+    def __enter__(self) -> _HeldClientLogs:
+        cls = type(self)
+        logger = logging.getLogger("aiokafka")
+        if cls._depth == 0:
+            cls._handler = _Holding()
+            cls._propagate = logger.propagate
+            logger.addHandler(cls._handler)
+            logger.propagate = False
+        cls._depth += 1
+        assert cls._handler is not None
+        self._handler = cls._handler
+        self._first = len(cls._handler.records)
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        cls = type(self)
+        cls._depth -= 1
+        if cls._depth == 0 and cls._handler is not None:
+            logger = logging.getLogger("aiokafka")
+            logger.removeHandler(cls._handler)
+            logger.propagate = cls._propagate
+            cls._handler = None
+
+    def exceptions(self) -> list[BaseException]:
+        """The exceptions the held records carry (what the client met while starting)."""
+        assert self._handler is not None
+        records = self._handler.records[self._first :]
+        return [arg for record in records for arg in (record.args or ()) if isinstance(arg, BaseException)]
+
+    def release(self) -> None:
+        """Pass the held records on, as if never held (the client started after all)."""
+        assert self._handler is not None
+        records = self._handler.records[self._first :]
+        del self._handler.records[self._first :]
+        for record in records:
+            if record.levelno >= logging.getLogger(record.name).getEffectiveLevel():
+                logging.getLogger().handle(record)
+
+
+class _Holding(logging.Handler):
+    def __init__(self) -> None:
+        super().__init__()
+        self.records: list[logging.LogRecord] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.records.append(record)
+
+
+def _unreachable_reason(exc: BaseException, met: list[BaseException]) -> str:
+    """Why a client could not start, in plain words: the connection errors it met
+    (refused, unknown host, timed out, TLS), or the Kafka error's own description."""
+    from aiokafka.errors import KafkaConnectionError
+
+    reasons: list[str] = []
+    for cause in [*met, exc.__cause__]:
+        reason = _os_reason(cause) if cause is not None else None
+        if reason and reason not in reasons:
+            reasons.append(reason)
+    if reasons:
+        return "; ".join(reasons)
+    if isinstance(exc, KafkaConnectionError):
+        return "no broker answered"
+    return describe_error(exc)
+
+
+def _os_reason(exc: BaseException) -> str | None:
+    if isinstance(exc, ssl.SSLError):
+        return f"TLS failed ({exc.reason or exc.strerror or 'handshake'})"
+    if isinstance(exc, socket.gaierror):
+        return "host name not found"
+    if isinstance(exc, TimeoutError | asyncio.TimeoutError):
+        return "timed out"
+    if isinstance(exc, OSError) and exc.errno:
+        return os.strerror(exc.errno).lower()
+    return None
 
 
 async def stop_client(client: Any) -> None:

@@ -10,12 +10,12 @@ watermark, per partition).
 
 from __future__ import annotations
 
-import contextlib
 import functools
 import logging
 from typing import Any
 
 from barsmith.bus.clients import new_admin, start_client
+from barsmith.errors import ConfigError
 from barsmith.ingest.ticks import Tick
 from barsmith.settings import KafkaSettings
 
@@ -73,12 +73,15 @@ async def topic_partitions(kafka: KafkaSettings, topic: str) -> int | None:
         await admin.close()
 
 
-async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int, configs: dict[str, str] | None = None) -> int:
-    """Create ``topic`` with ``partitions`` partitions (and topic ``configs``) if missing;
-    returns its partition count."""
-    from aiokafka.admin import NewTopic
-    from aiokafka.errors import TopicAlreadyExistsError
+# CreateTopics: "use the broker's default" for the replication factor (KIP-464; brokers >= 2.4).
+BROKER_DEFAULT_REPLICATION = -1
 
+
+async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int, configs: dict[str, str] | None = None) -> int:
+    """Create ``topic`` with ``partitions`` partitions, ``kafka.replication_factor``
+    replicas (unset: the broker's ``default.replication.factor``) and topic ``configs``
+    if missing; returns its partition count. A refusal by the broker is a
+    :class:`~barsmith.errors.ConfigError` saying why."""
     admin = await _admin(kafka)
     try:
         found = await _partition_count(admin, topic)
@@ -86,10 +89,44 @@ async def ensure_topic(kafka: KafkaSettings, topic: str, partitions: int, config
             if found != partitions:
                 log.warning("topic %s exists with %d partitions (not %d); using it as it is", topic, found, partitions)
             return found
-        with contextlib.suppress(TopicAlreadyExistsError):  # created meanwhile by someone else
-            await admin.create_topics(
-                [NewTopic(topic, num_partitions=partitions, replication_factor=1, topic_configs=configs or {})]
-            )
+        await _create_topic(admin, kafka, topic, partitions, configs or {})
         return partitions
     finally:
         await admin.close()
+
+
+async def _create_topic(admin: Any, kafka: KafkaSettings, topic: str, partitions: int, configs: dict[str, str]) -> None:
+    from aiokafka.admin import NewTopic
+    from aiokafka.errors import TopicAlreadyExistsError, for_code
+
+    replicas = kafka.replication_factor
+    new = NewTopic(topic, num_partitions=partitions, replication_factor=replicas or 1, topic_configs=configs)
+    if replicas is None:
+        # aiokafka's NewTopic refuses -1 without an explicit assignment, yet the broker
+        # takes it (and Kafka 4.1 does so on the CreateTopics version aiokafka sends).
+        new.replication_factor = BROKER_DEFAULT_REPLICATION
+    response = await admin.create_topics([new])
+    for name, code, message in _topic_errors(response):
+        if code == 0 or name != topic:
+            continue
+        error = for_code(code)
+        if error is TopicAlreadyExistsError:
+            continue  # created meanwhile by someone else
+        asked = f"{replicas} replicas" if replicas else "the broker's default replication factor"
+        reason = message or getattr(error, "description", "") or error.__name__
+        raise ConfigError(f"the broker refused to create topic {topic!r} ({partitions} partitions, {asked}): {reason}")
+    log.info(
+        "created topic %s: %d partitions, %s",
+        topic,
+        partitions,
+        f"{replicas} replicas" if replicas else "broker default replicas",
+    )
+
+
+def _topic_errors(response: Any) -> list[tuple[str, int, str | None]]:
+    """(topic, error code, message) of a CreateTopics response of any version."""
+    out = []
+    for entry in response.topic_errors:
+        name, code = entry[0], entry[1]
+        out.append((name, code, entry[2] if len(entry) > 2 else None))
+    return out

@@ -19,6 +19,7 @@ from typing import IO, Any, Final
 
 import msgpack
 
+from barsmith.errors import describe_error
 from barsmith.ingest.fastwire import INCOMPLETE, NOT_SIMPLE, new_scanner
 from barsmith.ingest.ticks import RejectReason
 
@@ -167,7 +168,7 @@ class FrameReader:
                 self._finish_tail(rejects)
                 return
             except _DECODE_ERRORS as exc:
-                self._resync(f"{type(exc).__name__}: {exc}", rejects)
+                self._resync(describe_error(exc), rejects)
                 return
             objects.append(obj)
             offsets.append(self._base + start)

@@ -52,6 +52,7 @@ def service_metrics(partitions: Partitions, source: LiveSource) -> ServiceMetric
             lambda: partitions.engines,
             lambda: {name: position.lag for name, position in source.partitions.items()},
             partitions.by_state,
+            lambda: source.key_mismatches,
         )
     )
 

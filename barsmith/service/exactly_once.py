@@ -38,7 +38,7 @@ from barsmith.bus.checkpoints import CheckpointBus, PartitionTransaction
 from barsmith.bus.clients import is_bus_failure, is_fenced
 from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine
-from barsmith.errors import StateError
+from barsmith.errors import StateError, describe_error
 from barsmith.service.delivery import DeliveryContext
 from barsmith.service.partitions import PartitionState
 from barsmith.settings import Settings
@@ -262,9 +262,8 @@ class ExactlyOnce:
             self._partitions.move(
                 stream,
                 FAILED,
-                "transaction failed (%s: %s); rewinding to the checkpoint at offset %s",
-                type(exc).__name__,
-                exc,
+                "transaction failed (%s); rewinding to the checkpoint at offset %s",
+                describe_error(exc),
                 owner.offset,
                 level=logging.WARNING,
             )

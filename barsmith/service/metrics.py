@@ -1,5 +1,10 @@
-"""Prometheus metrics of the service (names follow the Prometheus naming guide:
-base units, ``_total`` for counters).
+"""Prometheus metrics of the service. Names follow Prometheus' naming practice: the
+``barsmith_`` prefix, base units in the name (``_seconds``, ``_bytes``; ``_records``
+for Kafka records), ``_total`` for counters and nothing else. Label values are bounded
+by the configuration or by enums, never by the data: ``partition`` by the assigned
+input partitions, ``spec`` by the configured bar specs, ``sink`` by the configured
+sinks, ``reason``, ``outcome``, ``state`` and ``status`` by fixed sets
+(``tests/service/test_metrics_names.py`` checks a real scrape against these rules).
 
 Engine counters are read from the engines' own statistics at scrape time (a custom
 collector), so the per-tick path pays nothing for them.
@@ -35,11 +40,13 @@ class PartitionView:
         engines: Callable[[], Mapping[str, Engine]],
         lags: Callable[[], Mapping[str, int | None]],
         states: Callable[[], Mapping[PartitionState, int]] = dict,
+        key_mismatches: Callable[[], Mapping[str, int]] = dict,
     ) -> None:
         self.totals = totals
         self.engines = engines
         self.lags = lags
         self.states = states
+        self.key_mismatches = key_mismatches
 
 
 class _EngineCollector(Collector):
@@ -61,13 +68,25 @@ class _EngineCollector(Collector):
         for reason, count in sorted(stats.rejected.items()):
             rejects.add_metric([reason], count)
         yield rejects
-        built = CounterMetricFamily("barsmith_bars_built", "Bars closed by the engines, by spec", labels=["spec"])
+        closed = CounterMetricFamily(
+            "barsmith_bars_closed",
+            "Bars closed by the engines, by spec (delivered ones: barsmith_bars_delivered_total)",
+            labels=["spec"],
+        )
         for spec, count in sorted(stats.bars.items()):
-            built.add_metric([spec], count)
-        yield built
+            closed.add_metric([spec], count)
+        yield closed
+        mismatches = CounterMetricFamily(
+            "barsmith_key_mismatches",
+            "Records whose key is none of their ticks' symbols (the value's sym decides), by partition",
+            labels=["partition"],
+        )
+        for name, count in sorted(self._view.key_mismatches().items()):
+            mismatches.add_metric([name], count)
+        yield mismatches
 
         lag = GaugeMetricFamily(
-            "barsmith_consumer_lag_messages", "Records behind the partition's high watermark", labels=["partition"]
+            "barsmith_consumer_lag_records", "Kafka records behind the partition's high watermark", labels=["partition"]
         )
         for name, value in sorted(self._view.lags().items()):
             if value is not None:
@@ -103,7 +122,10 @@ class ServiceMetrics:
         self.registry = CollectorRegistry()
         self.registry.register(_EngineCollector(view))
         self.bars = Counter(
-            "barsmith_bars", "Bars handed to a sink, by spec and sink", ["spec", "sink"], registry=self.registry
+            "barsmith_bars_delivered",
+            "Bars handed to a sink, by spec and sink (closed ones: barsmith_bars_closed_total)",
+            ["spec", "sink"],
+            registry=self.registry,
         )
         self.sink_errors = Counter("barsmith_sink_errors", "Sink failures, by sink", ["sink"], registry=self.registry)
         self.commits = Counter(

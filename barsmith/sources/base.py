@@ -145,6 +145,9 @@ class LiveSource(Source, SourcePositions, Protocol):
     """
 
     started: asyncio.Event
+    # Records whose key is none of their ticks' symbols, by stream, since start (the
+    # value's ``sym`` decides the symbol; the key only placed the record).
+    key_mismatches: dict[str, int]
 
     async def start(self, listener: PartitionListener) -> None:
         """Join the group; ``listener`` hears of every assignment and revocation."""

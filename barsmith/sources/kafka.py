@@ -1,7 +1,10 @@
 """Kafka source: a consumer group member yielding one ordered stream per partition.
 
-A record's value is one tick map or a msgpack array of tick maps; its key, when
-present, is the symbol. Each partition is processed in order by its own engine
+A record's value is one tick map or a msgpack array of tick maps. The value's ``sym``
+decides each tick's symbol; the key only chose the partition. A record whose key is
+none of its ticks' symbols is still used as its value says, and counted
+(:class:`KeyMismatches`: a metric, and a log line per partition at most every
+minute). Each partition is processed in order by its own engine
 (stream name ``topic[partition]``). Offsets are committed by the delivery strategy,
 after the sinks have flushed what those records produced, or with the checkpoints.
 """
@@ -18,11 +21,11 @@ import msgpack
 
 from barsmith.bus.clients import new_consumer, start_client
 from barsmith.bus.topics import stream_name
-from barsmith.errors import StateError
+from barsmith.errors import StateError, describe_error
 from barsmith.ingest.fastwire import new_scanner
 from barsmith.ingest.framing import new_unpacker
 from barsmith.ingest.rejects import Reject
-from barsmith.ingest.ticks import RejectReason
+from barsmith.ingest.ticks import RejectReason, Tick
 from barsmith.settings import KafkaSettings
 from barsmith.sources.base import (
     PartitionListener,
@@ -48,10 +51,60 @@ def decode_value(value: bytes | None, unpacker_factory: Callable[[], msgpack.Unp
     except msgpack.exceptions.OutOfData:
         raise ValueError(f"record value is cut short ({len(value)} bytes)") from None
     except _DECODE_ERRORS as exc:
-        raise ValueError(f"{type(exc).__name__}: {exc}") from None
+        raise ValueError(describe_error(exc)) from None
     if unpacker.tell() != len(value):
         raise ValueError(f"{len(value) - unpacker.tell()} bytes after the first msgpack value")
     return obj
+
+
+class KeyMismatches:
+    """Counts records whose key is none of their ticks' symbols, by stream. The value's
+    ``sym`` decides the symbol — the key only placed the record on its partition, so a
+    mismatch is a producer's mistake worth seeing (the symbol's ticks may be split
+    across partitions), not a reason to drop data. Logged per stream: the first one at
+    once, then at most one line every ``log_every_s`` with the count since the last."""
+
+    def __init__(self, log_every_s: float = 60.0, clock: Callable[[], float] = time.monotonic) -> None:
+        self.counts: dict[str, int] = {}
+        self._log_every_s = log_every_s
+        self._clock = clock
+        self._logged: dict[str, tuple[float, int]] = {}  # stream -> (when, count then)
+
+    def check(self, stream: str, offset: int, key: bytes, value: Any) -> None:
+        """Count the record at ``offset`` if ``key`` is none of ``value``'s symbols (a
+        value without any symbol is the validator's business, not counted here)."""
+        text = key.decode("utf-8", "replace")
+        if type(value) is Tick and value.sym == text:
+            return  # the usual case, first
+        symbols = _symbols(value)
+        if not symbols or text in symbols:
+            return
+        count = self.counts[stream] = self.counts.get(stream, 0) + 1
+        now = self._clock()
+        when, before = self._logged.get(stream, (-self._log_every_s, 0))
+        if now - when >= self._log_every_s:
+            self._logged[stream] = (now, count)
+            log.warning(
+                "%s: %d record(s) keyed by something other than their symbol since the last report "
+                "(offset %d: key %r, symbol %r); the value's sym decides, the key only chose the partition",
+                stream,
+                count - before,
+                offset,
+                text,
+                symbols[0],
+            )
+
+
+def _symbols(value: Any) -> list[str]:
+    """The symbols of a decoded record's ticks (a tick, a map, or a batch of them)."""
+    if type(value) is Tick:
+        return [value.sym]
+    if type(value) is dict:
+        sym = value.get("sym")
+        return [sym] if type(sym) is str else []
+    if type(value) is list:
+        return [sym for item in value for sym in _symbols(item) if type(item) is not list]
+    return []
 
 
 class KafkaSource:
@@ -76,6 +129,8 @@ class KafkaSource:
         self._stopped = False
         self._scanner = new_scanner()
         self._failure: BaseException | None = None
+        self._keys = KeyMismatches()
+        self.key_mismatches = self._keys.counts
 
     def progress(self) -> tuple[int, int] | None:
         return None
@@ -231,27 +286,30 @@ class KafkaSource:
         rejects: list[Reject] = []
         unpackb = msgpack.unpackb
         scan = self._scanner.scan_value if self._scanner is not None else None
+        keys = self._keys
         for record in records:
             value = record.value
+            decoded: Any
             # Usual shapes are decoded straight into ticks (see barsmith.ingest.fastwire).
-            if scan is not None and value is not None:
-                ticks = scan(value)
-                if ticks is not None:
-                    values.append(ticks)
-                    positions.append(record.offset)
-                    continue
-            try:
-                # The general way; the checked decoder below explains failures precisely.
-                values.append(unpackb(value, raw=False, strict_map_key=False))
-                positions.append(record.offset)
-            except Exception:
+            ticks = scan(value) if scan is not None and value is not None else None
+            if ticks is not None:
+                decoded = ticks
+            else:
                 try:
-                    values.append(decode_value(record.value))
-                    positions.append(record.offset)
-                except ValueError as exc:
-                    rejects.append(
-                        Reject(name, record.offset, RejectReason.NOT_MSGPACK, str(exc), bytes(record.value or b""))
-                    )
+                    # The general way; the checked decoder below explains failures precisely.
+                    decoded = unpackb(value, raw=False, strict_map_key=False)
+                except Exception:
+                    try:
+                        decoded = decode_value(record.value)
+                    except ValueError as exc:
+                        rejects.append(
+                            Reject(name, record.offset, RejectReason.NOT_MSGPACK, str(exc), bytes(record.value or b""))
+                        )
+                        continue
+            values.append(decoded)
+            positions.append(record.offset)
+            if record.key is not None:
+                keys.check(name, record.offset, record.key, decoded)
         return RecordBatch(name, name, values, positions, rejects)
 
     async def commit(self, streams: list[str] | None = None) -> dict[str, int]:

@@ -61,6 +61,7 @@ class MemoryLiveSource:
         self.partitions: dict[str, PartitionPosition] = {}
         self.pause_on_assign = pause_on_assign
         self.started = asyncio.Event()
+        self.key_mismatches: dict[str, int] = {}  # records in memory have no keys
         self._batch_records = batch_records
         self._initial = list(range(len(topic.records))) if assigned is None else list(assigned)
         self._idle_poll_s = idle_poll_s

@@ -24,6 +24,7 @@ class PublishSummary:
     ticks: int = 0  # tick candidates inside them
     skipped: int = 0  # spans of the file that were not msgpack (not publishable)
     seconds: float = 0.0
+    shift_ns: int = 0  # added to every event time (shift_to_now)
 
 
 async def publish_feed(
@@ -33,12 +34,19 @@ async def publish_feed(
     partitions: int = 8,
     speed: float | None = None,
     batch_ticks: int = 1,
+    *,
+    shift_to_now: bool = False,
 ) -> PublishSummary:
     """Publish recorded files to ``topic``, keyed by symbol.
 
     ``speed``: None = as fast as possible; 1.0 = real time (event-time gaps become
     wall-time waits); 10.0 = ten times faster. ``batch_ticks > 1`` sends arrays of up
-    to that many consecutive ticks of one partition per record.
+    to that many consecutive ticks of one partition per record. ``shift_to_now`` adds
+    one offset to every tick's ``ts`` so that the first tick is stamped with the wall
+    clock when it is sent: the spacing of the feed is kept, so at ``speed=1`` every
+    tick is stamped about when it is sent, as live data is (the idle rule and the
+    delay metrics then mean something); unpaced, the feed's later ticks lie in the
+    future.
     """
     count = await ensure_topic(kafka, topic, partitions)
     producer = new_producer(kafka, f"{kafka.client_id}-publish", linger_ms=20, max_batch_size=256 * 1024)
@@ -50,8 +58,12 @@ async def publish_feed(
     first_ts: int | None = None
     wall0 = time.monotonic()
 
+    shift: int | None = None if shift_to_now else 0  # known at the first tick with a ts
+
     async def send(partition: int, value: Any, key: str | None) -> None:
         value = as_wire(value)
+        if shift:
+            value = shifted(value, shift)
         await producer.send(topic, value=packb(value), key=key.encode("utf-8") if key else None, partition=partition)
         summary.records += 1
 
@@ -61,6 +73,10 @@ async def publish_feed(
             summary.skipped += len(batch.rejects)
             for record in batch.records:
                 summary.ticks += len(record) if type(record) is list else 1
+                if shift is None:
+                    first = _event_time(record)
+                    if first is not None:
+                        shift = summary.shift_ns = time.time_ns() - first
                 if speed is not None:
                     ts = _event_time(record)
                     if ts is not None:
@@ -97,6 +113,17 @@ def as_wire(record: Any) -> Any:
     if type(record) is list:
         return [as_wire(item) for item in record]
     return record
+
+
+def shifted(wire: Any, shift_ns: int) -> Any:
+    """Wire map(s) with ``shift_ns`` added to every integer ``ts`` (other values as they are)."""
+    if type(wire) is list:
+        return [shifted(item, shift_ns) for item in wire]
+    if type(wire) is dict:
+        ts = wire.get("ts")
+        if type(ts) is int and ts + shift_ns > 0:
+            return {**wire, "ts": ts + shift_ns}
+    return wire
 
 
 def _event_time(record: Any) -> int | None:

@@ -31,6 +31,7 @@ _NAMES = (
     "JASPERGATE", "KELPMOUTH", "LARKSPIRE", "MOSSBOROUGH", "NETTLEBANK", "OAKENSHAW",
     "PEWTERFIELD", "RUSHCOMBE", "SALTMARSH", "THISTLEWOOD", "UMBERLY", "WILLOWRAKE",
 )  # fmt: skip
+MAX_SYMBOLS = len(_NAMES)  # listings the generator can invent
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,8 +67,8 @@ class _Listing:
 
 
 def _listings(cfg: SynthConfig, rng: random.Random) -> list[_Listing]:
-    if not 1 <= cfg.symbols <= len(_NAMES):
-        raise ValueError(f"symbols must be between 1 and {len(_NAMES)}")
+    if not 1 <= cfg.symbols <= MAX_SYMBOLS:
+        raise ValueError(f"symbols must be between 1 and {MAX_SYMBOLS}")
     # Relative activity spread log-uniformly over ~3 decades, then scaled to fit.
     weights = [10 ** (3.0 * i / max(1, cfg.symbols - 1)) for i in range(cfg.symbols)]
     total_rate = cfg.messages / cfg.duration_s

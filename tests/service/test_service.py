@@ -23,7 +23,7 @@ from barsmith.replay import replay_files
 from barsmith.service.app import build_service
 from barsmith.settings import KafkaSettings, load_settings
 from barsmith.tools.feeds import publish_feed, record_topic
-from barsmith.tools.synth import SynthConfig, write_feed
+from barsmith.tools.synth import SynthConfig, generate, write_feed
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "demo_feeds" / "kestrelmoor-evening.msgpack.gz"
@@ -176,12 +176,12 @@ async def test_service_builds_the_bars_replay_builds(kafka_bootstrap: str, tmp_p
     assert metrics[("barsmith_messages_total", (("outcome", "late"),))] == stats.late
     for reason, count in stats.rejected.items():
         assert metrics[("barsmith_rejects_total", (("reason", reason),))] == count
-    lags = [v for (name, _), v in metrics.items() if name == "barsmith_consumer_lag_messages"]
+    lags = [v for (name, _), v in metrics.items() if name == "barsmith_consumer_lag_records"]
     assert len(lags) == 8 and all(v == 0 for v in lags)
     assert sum(v for (n, _), v in metrics.items() if n == "barsmith_watermark_seconds") > 0
     # Bars counted at scrape time are those closed so far (the rest close at shutdown).
     for spec in SPECS:
-        assert metrics[("barsmith_bars_built_total", (("spec", spec),))] <= stats.bars[spec]
+        assert metrics[("barsmith_bars_closed_total", (("spec", spec),))] <= stats.bars[spec]
 
     expected = await asyncio.to_thread(replay_frame, DEMO, tmp_path / "replay")
     closed = expected[expected["complete"]].reset_index(drop=True)
@@ -239,18 +239,33 @@ def test_two_workers_split_the_partitions(kafka_bootstrap: str, small_feed: Path
     assert_same_bars(replay_frame(small_feed, tmp_path / "replay"), parquet_frame(out))
 
 
+def _accepted(port: int) -> float:
+    """Messages the service at ``port`` accepted so far (0 before its endpoint is up)."""
+    try:
+        _, text = scrape(port)
+    except OSError:
+        return 0.0
+    return samples(text).get(("barsmith_messages_total", (("outcome", "accepted"),)), 0.0)
+
+
 def test_sigterm_mid_stream_exits_cleanly(kafka_bootstrap: str, tmp_path: Path) -> None:
     topic = "sigterm-ticks"
     asyncio.run(publish_feed([DEMO], kafka(kafka_bootstrap), topic, partitions=8))
     out = tmp_path / "service"
+    port = free_port_pair()
     args = [
         sys.executable, "-m", "barsmith", "run", "--bootstrap", kafka_bootstrap, "--input-topic", topic,
         "--group", "g-sigterm", "--output-topic", "sigterm-bars", "--parquet-dir", str(out),
-        "--metrics-port", "0", *[a for s in SPECS for a in ("--bars", s)],
+        "--metrics-port", str(port), *[a for s in SPECS for a in ("--bars", s)],
     ]  # fmt: skip
     proc = subprocess.Popen(args, stderr=subprocess.PIPE, text=True)
     try:
-        time.sleep(6)  # mid-stream: the feed takes longer than this to consume
+        # Mid-stream: once the service has consumed part of the feed (the whole takes longer).
+        deadline = time.monotonic() + 90
+        while _accepted(port) < 20_000:
+            assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
+            assert time.monotonic() < deadline, "the service consumed nothing"
+            time.sleep(0.2)
         assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
         proc.send_signal(signal.SIGTERM)
         started = time.monotonic()
@@ -282,10 +297,10 @@ async def test_record_then_replay_round_trip(kafka_bootstrap: str, small_feed: P
 # -- helpers ---------------------------------------------------------------------------
 
 
-async def _create_topic(bootstrap: str, topic: str) -> None:
+async def _create_topic(bootstrap: str, topic: str, partitions: int = 8) -> None:
     from barsmith.bus import ensure_topic
 
-    await ensure_topic(kafka(bootstrap), topic, 8)
+    await ensure_topic(kafka(bootstrap), topic, partitions)
 
 
 def _wait_ready(ports: list[int], proc: subprocess.Popen[str]) -> None:
@@ -331,3 +346,94 @@ async def test_idle_rule_closes_bars_of_a_quiet_partition(kafka_bootstrap: str, 
     # Without the idle rule the last ~2 s of bars (within the lateness of the last tick)
     # could only have been flushed at shutdown, marked incomplete.
     assert bars["complete"].all()
+
+
+def test_publish_shift_to_now_starts_the_feed_now_and_keeps_its_spacing(kafka_bootstrap: str, tmp_path: Path) -> None:
+    """``barsmith publish --shift-to-now``: one offset added to every event time, so the
+    first tick is stamped about when it is sent and every interval of the feed is kept."""
+    from barsmith.cli import main
+
+    config = SynthConfig(messages=3_000, symbols=4, duration_s=300, malformed=2, seed=9)
+    feed = tmp_path / "dated.msgpack"
+    write_feed(feed, config)
+    original = {(t["sym"], t["seq"]): t["ts"] for t in generate(config)}
+    before = time.time_ns()
+    args = ["publish", str(feed), "--bootstrap", kafka_bootstrap, "--topic", "shifted-ticks", "--partitions", "2"]
+    assert main([*args, "--shift-to-now"]) == 0
+    published: dict[tuple[str, int], int] = {}
+    for record in asyncio.run(read_records(kafka_bootstrap, "shifted-ticks")):
+        value = msgpack.unpackb(record.value)
+        for t in value if isinstance(value, list) else [value]:
+            if isinstance(t, dict) and isinstance(t.get("ts"), int) and isinstance(t.get("seq"), int):
+                published[(t["sym"], t["seq"])] = t["ts"]
+    assert published.keys() == original.keys()
+    shifts = {published[key] - original[key] for key in original}
+    assert len(shifts) == 1  # one offset for all: the spacing is kept to the nanosecond
+    first = min(original, key=lambda key: original[key])
+    # The feed's first tick is stamped with the wall clock at about the moment it was sent.
+    assert before - 1_000_000_000 <= published[first] <= time.time_ns()
+    assert published[first] - before < 10 * 1_000_000_000
+
+
+async def test_a_key_other_than_the_symbol_is_counted_and_the_value_decides(
+    kafka_bootstrap: str, tmp_path: Path
+) -> None:
+    """README, "The live service": the key only placed the record; the value's sym decides
+    its symbol, and a record keyed by none of its ticks' symbols is counted."""
+    from aiokafka import AIOKafkaProducer
+    from prometheus_client import generate_latest
+
+    topic = "keyed-ticks"
+    await _create_topic(kafka_bootstrap, topic, partitions=1)
+    t0 = 1_798_794_000_000_000_000
+    fen = [{"sym": "FENWORTH.KMX", "ts": t0 + i * 10**9, "seq": i + 1, "kind": "delta",
+            "trade_px": 10.0, "trade_qty": 1.0} for i in range(6)]  # fmt: skip
+    mar = {"sym": "MARROWAY.KMX", "ts": t0, "seq": 1, "kind": "delta", "trade_px": 20.0, "trade_qty": 2.0}
+    sends = [
+        (b"FENWORTH.KMX", fen[0]),
+        (b"MARROWAY.KMX", fen[1]),  # another symbol's key: counted
+        (b"QUILLFERN.KMX", fen[2]),  # counted
+        (b"MARROWAY.KMX", [fen[3], mar]),  # a batch keyed by one of its symbols: fine
+        (b"QUILLFERN.KMX", [fen[4], mar | {"seq": 2}]),  # none of them: counted
+        (None, fen[5]),  # no key: nothing to compare
+    ]
+    producer = AIOKafkaProducer(bootstrap_servers=kafka_bootstrap)
+    await producer.start()
+    try:
+        for key, value in sends:
+            await producer.send_and_wait(topic, msgpack.packb(value), key=key, partition=0)
+    finally:
+        await producer.stop()
+    settings = service_settings(kafka_bootstrap, topic, bars=["volume:1000"], parquet={"dir": tmp_path / "service"})
+    runner = build_service(settings)
+    summary = await runner.serve()
+    assert summary.stats.accepted == 8
+    text = generate_latest(runner.metrics.registry).decode()
+    assert samples(text)[("barsmith_key_mismatches_total", (("partition", f"{topic}[0]"),))] == 3
+    bars = pd.read_parquet(tmp_path / "service")
+    # Every tick landed on its own symbol, whatever its key said.
+    assert bars.groupby("symbol")["trades"].sum().to_dict() == {"FENWORTH.KMX": 6, "MARROWAY.KMX": 2}
+
+
+async def test_the_readme_reads_the_bus_as_it_shows(kafka_bootstrap: str, small_feed: Path) -> None:
+    """The README's aiokafka example, run as written (only the broker and topic changed),
+    prints every committed bar: its spec header, symbol and integer-ns start."""
+    from factories import readme_blocks
+
+    await publish_feed([small_feed], kafka(kafka_bootstrap), "readme-ticks", partitions=8)
+    settings = service_settings(kafka_bootstrap, "readme-ticks", kafka={"output_topic": "readme-bars"})
+    await build_service(settings).serve()
+    expected = await read_records(kafka_bootstrap, "readme-bars")
+    (block,) = [b for b in readme_blocks("python") if "AIOKafkaConsumer" in b]
+    assert 'isolation_level="read_committed"' in block
+    code = block.replace('"127.0.0.1:19092"', repr(kafka_bootstrap)).replace(
+        'topic: str = "bars"', 'topic: str = "readme-bars"'
+    )
+    done = await asyncio.to_thread(
+        subprocess.run, [sys.executable, "-c", code], capture_output=True, text=True, timeout=120, check=False
+    )
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
+    assert len(lines) == len(expected) > 0
+    spec, symbol, day, clock = lines[0].split()[:4]
+    assert spec in SPECS and symbol.endswith(".KMX") and day.startswith("2027-01-01") and clock.endswith("+00:00")
