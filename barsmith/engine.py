@@ -38,6 +38,7 @@ from dataclasses import dataclass, field
 from typing import Any, Final
 
 from barsmith.bars.bar import BarLayout, OpenBar
+from barsmith.bars.family import DECLINE
 from barsmith.bars.group import GROUPS, Tracker
 from barsmith.bars.record import Bar
 from barsmith.bars.spec import BarSpec
@@ -67,6 +68,7 @@ class EngineStats:
     time_regressions: int = 0
     rejected: Counter[str] = field(default_factory=Counter)  # by reason (not counting late)
     bars: Counter[str] = field(default_factory=Counter)  # by spec text
+    outside: Counter[str] = field(default_factory=Counter)  # messages a spec's sessions left out, by spec
 
     def add(self, other: EngineStats) -> None:
         self.records += other.records
@@ -77,6 +79,7 @@ class EngineStats:
         self.time_regressions += other.time_regressions
         self.rejected.update(other.rejected)
         self.bars.update(other.bars)
+        self.outside.update(other.outside)
 
     def since(self, earlier: EngineStats) -> EngineStats:
         """The counts added after ``earlier`` (a copy of these counters taken before)."""
@@ -90,6 +93,7 @@ class EngineStats:
         )
         out.rejected = self.rejected - earlier.rejected
         out.bars = self.bars - earlier.bars
+        out.outside = self.outside - earlier.outside
         return out
 
     def copy(self) -> EngineStats:
@@ -220,7 +224,7 @@ class Engine:
                 if bar is not None:
                     layout = self._layouts[index]
                     self._seal(bar, layout, state, until)
-                    self._emit(bar, layout, False, until == bar.start)
+                    self._emit(bar, layout, False, until == bar.start, state.family_states[index])
                     state.bars[index] = None
 
     def set_wall_clock(self, now_ns: int) -> None:
@@ -301,6 +305,7 @@ class Engine:
                 stats.time_regressions,
                 dict(stats.rejected),
                 dict(stats.bars),
+                dict(stats.outside),
             ],
         }
 
@@ -323,7 +328,7 @@ class Engine:
                 if name in tracked:
                     value, since = tracked[name]
                     state.tracked[k], state.since[k] = value, int(since)
-            state.family_states = [f.state_from_data(d) for f, d in zip(families, family_data, strict=True)]
+            state.family_states = [f.state_from_data(sym, d) for f, d in zip(families, family_data, strict=True)]
             state.bars = [None if ref is None else bars[int(ref)] for ref in refs]
         for end, order, ref, sym, index in data["due"]:
             engine._due.append((int(end), int(order), bars[int(ref)], engine._symbols[str(sym)], int(index)))
@@ -340,10 +345,12 @@ class Engine:
         stats.gaps, stats.late, stats.time_regressions = int(values[3]), int(values[4]), int(values[5])
         stats.rejected.update({str(k): int(v) for k, v in values[6].items()})
         stats.bars.update({str(k): int(v) for k, v in values[7].items()})
+        if len(values) > 8:
+            stats.outside.update({str(k): int(v) for k, v in values[8].items()})
         return engine
 
     def _new_symbol(self, sym: str) -> _SymbolState:
-        families = [layout.family.new_state() for layout in self._layouts]
+        families = [layout.family.new_state(sym) for layout in self._layouts]
         state = self._symbols[sym] = _SymbolState(sym, len(self._layouts), len(self._trackers), families)
         return state
 
@@ -432,6 +439,7 @@ class Engine:
             layout = layouts[index]
             family = layout.family
             bar = bars[index]
+            fstate = state.family_states[index]
             if bar is not None and t >= bar.seal_at:
                 # The symbol moved past this bar: freeze it (before this message's
                 # effect on the book). A bar closed by time waits to be due; any
@@ -439,19 +447,31 @@ class Engine:
                 self._seal(bar, layout, state, bar.end)
                 bars[index] = None
                 if not family.closes_by_time:
-                    self._emit(bar, layout, True, bar.end == bar.start)
+                    self._emit(bar, layout, True, bar.end == bar.start, fstate)
+                elif family.fills:
+                    following = self._fill(state, index, bar.end, t)
+                    if following is not None and t < following[0]:
+                        # Between the family's intervals (outside its sessions).
+                        stats.outside[layout.spec_text] += 1
+                        self._open_empty(state, index, following)
+                        continue
                 bar = None
             if bar is None:
                 if family.opens_on_trade and px is None:
                     continue
-                start, end, seal_at = family.window(t)
+                start, end, seal_at = family.window(t, fstate)
+                if start == DECLINE:
+                    stats.outside[layout.spec_text] += 1
+                    if family.fills:
+                        self._open_empty(state, index, family.next_window(t, fstate))
+                    continue
                 if family.closes_by_time and end <= self._closed_through:
                     if late_specs is None:
                         late_specs = []
                     late_specs.append(layout.spec_text)
                     continue
                 bar = bars[index] = layout.new_bar(tick.sym, start, end, seal_at)
-                self._opened(bar, layout, state)
+                self._opened(bar, layout, state, fstate)
                 if family.closes_by_time:
                     self._push_due(bar, state, index)
             bar.messages += 1
@@ -460,7 +480,7 @@ class Engine:
                 accs = bar.accs
                 for j in layout.trade_accs:
                     accs[j].trade(px, qty)
-                if family.counts_trades and family.trade(bar, state.family_states[index], px, qty, t):
+                if family.counts_trades and family.trade(bar, fstate, px, qty, t):
                     if closing is None:
                         closing = []
                     closing.append(index)
@@ -501,10 +521,12 @@ class Engine:
                 layout = layouts[index]
                 self._seal(bar, layout, state, t)
                 bars[index] = None
-                self._emit(bar, layout, True, t == bar.start)
+                self._emit(bar, layout, True, t == bar.start, state.family_states[index])
 
-    def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState) -> None:
+    def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState, family_state: Any) -> None:
         """A new bar learns the tracked values in effect (before its first message)."""
+        if layout.family.has_columns:
+            layout.family.opened(bar, family_state)
         accs = bar.accs
         for k, j, slot in layout.tracked:
             accs[j].opened(slot, state.tracked[k])
@@ -555,16 +577,46 @@ class Engine:
         while due and due[0][0] <= limit_ns:
             end, _, bar, state, index = heapq.heappop(due)
             layout = self._layouts[index]
+            fstate = state.family_states[index]
             if state.bars[index] is bar:
                 # Still the symbol's open bar: its last message is the symbol's last.
                 self._seal(bar, layout, state, end if complete else min(end, self._watermark))
                 state.bars[index] = None
-            self._emit(bar, layout, complete, False)
+                if complete and layout.family.fills:
+                    # The symbol's next interval, open until a message or the clock.
+                    self._open_empty(state, index, self._fill(state, index, end, end))
+            self._emit(bar, layout, complete, False, fstate)
         self._next_due = due[0][0] if due else _NO_CLOSE
 
-    def _emit(self, bar: OpenBar, layout: BarLayout, complete: bool, empty_window: bool) -> None:
+    def _fill(self, state: _SymbolState, index: int, after: int, now: int) -> tuple[int, int] | None:
+        """A ``fills`` family: bars for the intervals from ``after`` that ended by
+        ``now``, without messages (sealed at once, emitted when due); returns the next
+        interval, which has not ended."""
+        layout = self._layouts[index]
+        family = layout.family
+        fstate = state.family_states[index]
+        window = family.next_window(after, fstate)
+        while window is not None and window[1] <= now:
+            bar = layout.new_bar(state.book.symbol, window[0], window[1], window[1])
+            self._opened(bar, layout, state, fstate)
+            self._seal(bar, layout, state, window[1])
+            self._push_due(bar, state, index)
+            window = family.next_window(window[1], fstate)
+        return window
+
+    def _open_empty(self, state: _SymbolState, index: int, window: tuple[int, int] | None) -> None:
+        """Keep ``window`` open in the symbol's slot, without messages, until a message
+        lands in it or the clock closes it (then it is a filled bar)."""
+        if window is None:
+            return
+        layout = self._layouts[index]
+        bar = state.bars[index] = layout.new_bar(state.book.symbol, window[0], window[1], window[1])
+        self._opened(bar, layout, state, state.family_states[index])
+        self._push_due(bar, state, index)
+
+    def _emit(self, bar: OpenBar, layout: BarLayout, complete: bool, empty_window: bool, family_state: Any) -> None:
         self.stats.bars[bar.spec_text] += 1
-        self._bars.append(bar.finish(layout.names, complete, empty_window))
+        self._bars.append(bar.finish(layout, complete, empty_window, family_state))
 
 
 def _reject_of(

@@ -55,6 +55,8 @@ class RunSummary:
         ]
         for spec, count in s.bars.items():
             lines.append(f"bars {spec:<11}{count:>14,}")
+        for spec, count in s.outside.items():
+            lines.append(f"outside sessions, {spec}: {count:,} messages (not in its bars)")
         lines.append(f"elapsed         {self.elapsed_s:>14.2f} s   ({self.ticks_per_s:,.0f} ticks/s)")
         if self.interrupted:
             lines.append("interrupted: open bars were flushed as incomplete")

@@ -8,6 +8,7 @@ Cheap checks happen when the object is built; every problem is reported at once 
 
 from __future__ import annotations
 
+import functools
 import os
 from enum import StrEnum
 from pathlib import Path
@@ -30,6 +31,8 @@ from pydantic_settings import (
     TomlConfigSettingsSource,
 )
 
+from barsmith.bars.calendar import Calendars, load_calendars
+from barsmith.bars.family import SpecContext
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
@@ -151,6 +154,26 @@ class EventTimeSettings(BaseModel):
     )
 
 
+class SessionSettings(BaseModel):
+    """Trading calendars for ``session:`` bars (README, "Sessions")."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    calendars_file: Path | None = Field(None, description="TOML calendar file: venues, sessions, symbol mapping")
+    outside: Literal["drop", "bars"] = Field("drop", description="messages outside sessions: drop (counted), or bars")
+
+    def context(self) -> SpecContext:
+        """What session families need to parse: the calendars, loaded (cached)."""
+        path = self.calendars_file
+        if path is None:
+            return SpecContext(None, self.outside)
+        try:
+            stamp = path.stat().st_mtime_ns
+        except OSError:
+            return SpecContext(load_calendars(path), self.outside)  # says what is wrong with it
+        return SpecContext(_load_calendars_cached(str(path), stamp), self.outside)
+
+
 class LimitsSettings(BaseModel):
     """Bounds that keep memory in check under hostile input."""
 
@@ -170,7 +193,8 @@ class Settings(BaseSettings):
         validate_default=True,
     )
 
-    # Before ``bars``: the specs' validation reads it.
+    # Before ``bars``: the specs' validation reads these two.
+    sessions: SessionSettings = Field(default_factory=SessionSettings)
     bar_groups: list[str] = Field(
         default_factory=lambda: list(DEFAULT_GROUPS),
         description="statistic groups of a bar spec that names none (spec@group,...); core is always carried",
@@ -197,14 +221,16 @@ class Settings(BaseSettings):
     @field_validator("bars")
     @classmethod
     def _specs_parse(cls, value: list[str], info: ValidationInfo) -> list[str]:
+        sessions = info.data.get("sessions")
         try:
-            parse_specs(value, info.data.get("bar_groups", DEFAULT_GROUPS))
-        except BarSpecError as exc:
+            context = sessions.context() if isinstance(sessions, SessionSettings) else None
+            parse_specs(value, info.data.get("bar_groups", DEFAULT_GROUPS), context)
+        except (BarSpecError, ConfigError) as exc:
             raise ValueError(str(exc)) from None
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        return parse_specs(self.bars, self.bar_groups)
+        return parse_specs(self.bars, self.bar_groups, self.sessions.context())
 
     @property
     def state_topic(self) -> str:
@@ -246,6 +272,11 @@ class Settings(BaseSettings):
         if toml_file is not None:
             sources.append(TomlConfigSettingsSource(settings_cls, toml_file=toml_file))
         return tuple(sources)
+
+
+@functools.lru_cache(maxsize=8)
+def _load_calendars_cached(path: str, mtime_ns: int) -> Calendars:
+    return load_calendars(path)
 
 
 def _ns(seconds: float) -> int:
