@@ -8,6 +8,7 @@ Cheap checks happen when the object is built; every problem is reported at once 
 
 from __future__ import annotations
 
+import dataclasses
 import functools
 import os
 from enum import StrEnum
@@ -48,6 +49,9 @@ class ParquetSettings(BaseModel):
     max_file_rows: int = Field(5_000_000, gt=0, description="a file rolls after this many bars")
     roll_interval_s: float | None = Field(None, gt=0, description="a file rolls after this many seconds")
     compression: Literal["zstd", "snappy", "gzip", "none"] = "zstd"
+    output_mode: Literal["revisions", "final"] = Field(
+        "revisions", description="with revision_window_ms: write every revision, or each bar once when final"
+    )
 
 
 class SecuritySettings(BaseModel):
@@ -89,6 +93,9 @@ class KafkaSettings(BaseModel):
     poll_timeout_ms: int = Field(200, gt=0, le=10_000)
     commit_interval_s: float = Field(5.0, gt=0)
     output_compression: Literal["zstd", "lz4", "gzip", "none"] = "zstd"
+    output_mode: Literal["revisions", "final"] = Field(
+        "revisions", description="with revision_window_ms: publish every revision, or each bar once when final"
+    )
     output_linger_ms: int = Field(5, ge=0, le=10_000)
     session_timeout_ms: int = Field(10_000, ge=1_000, le=300_000, description="group member declared dead after")
     state_topic: str | None = Field(None, description="checkpoints (compacted); default <group_id>.barsmith-state")
@@ -201,6 +208,9 @@ class Settings(BaseSettings):
     )
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
     lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
+    revision_window_ms: int = Field(
+        0, ge=0, le=7 * 86_400_000, description="a straggler this long after its time bar closed revises it (0: late)"
+    )
     parquet: ParquetSettings = Field(default_factory=ParquetSettings)
     kafka: KafkaSettings = Field(default_factory=KafkaSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
@@ -230,7 +240,8 @@ class Settings(BaseSettings):
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        return parse_specs(self.bars, self.bar_groups, self.sessions.context())
+        context = dataclasses.replace(self.sessions.context(), revisions=self.revision_window_ms > 0)
+        return parse_specs(self.bars, self.bar_groups, context)
 
     @property
     def state_topic(self) -> str:
@@ -239,6 +250,10 @@ class Settings(BaseSettings):
     @property
     def lateness_ns(self) -> int:
         return self.lateness_ms * 1_000_000
+
+    @property
+    def revision_window_ns(self) -> int:
+        return self.revision_window_ms * 1_000_000
 
     def stream_limits(self) -> StreamLimits:
         """The per-stream guards and bounds the engines apply."""

@@ -12,7 +12,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from typing import Any
 
-from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, Column
+from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, REVISION, Column
 from barsmith.bars.core import CORE
 from barsmith.bars.family import BarFamily
 from barsmith.bars.group import Accumulator, StatGroup
@@ -22,11 +22,16 @@ from barsmith.bars.spread import SPREAD
 __all__ = ["BAR_COLUMNS", "DEFAULT_COLUMNS", "Bar", "BarLayout", "OpenBar", "layout_columns"]
 
 
-def layout_columns(groups: Sequence[StatGroup], family_columns: Sequence[Column] = ()) -> tuple[Column, ...]:
-    """The columns of a bar carrying ``groups`` (and its family's own), in order."""
+def layout_columns(
+    groups: Sequence[StatGroup], family_columns: Sequence[Column] = (), revisions: bool = False
+) -> tuple[Column, ...]:
+    """The columns of a bar carrying ``groups`` (and its family's own; ``revision`` when
+    bars may be revised), in order."""
     columns: list[Column] = [*FRAME_HEAD, *family_columns]
     for group in groups:
         columns.extend(group.columns)
+    if revisions:
+        columns.append(REVISION)
     columns.extend(FRAME_TAIL)
     return tuple(columns)
 
@@ -42,12 +47,18 @@ class BarLayout:
     quantities of the whole engine (a symbol follows each once)."""
 
     def __init__(
-        self, spec_text: str, family: BarFamily, groups: Sequence[StatGroup], tracker_index: dict[str, int]
+        self,
+        spec_text: str,
+        family: BarFamily,
+        groups: Sequence[StatGroup],
+        tracker_index: dict[str, int],
+        revisions: bool = False,
     ) -> None:
         self.spec_text = spec_text
         self.family = family
         self.groups = tuple(groups)
-        self.columns = layout_columns(self.groups, family.columns)
+        self.revisions = revisions
+        self.columns = layout_columns(self.groups, family.columns, revisions)
         self.names = tuple(column.name for column in self.columns)
         self.index = {name: i for i, name in enumerate(self.names)}
         self.family_width = len(family.columns)
@@ -72,6 +83,7 @@ class BarLayout:
         bar = self.new_bar(str(data[0]), int(data[1]), int(data[2]), int(data[3]))
         bar.messages, bar.gaps, bar.progress = int(data[4]), int(data[5]), float(data[6])
         bar.tag = data[8] if len(data) > 8 else None
+        bar.revision = int(data[9]) if len(data) > 9 else -1
         states: list[Any] = data[7]
         if len(states) != len(bar.accs):
             raise ValueError(f"a bar of {self.spec_text} has {len(bar.accs)} groups, the checkpoint {len(states)}")
@@ -83,7 +95,19 @@ class BarLayout:
 class OpenBar:
     """A bar being built: its frame, and an accumulator per statistic group."""
 
-    __slots__ = ("accs", "end", "gaps", "messages", "progress", "seal_at", "spec_text", "start", "symbol", "tag")
+    __slots__ = (
+        "accs",
+        "end",
+        "gaps",
+        "messages",
+        "progress",
+        "revision",
+        "seal_at",
+        "spec_text",
+        "start",
+        "symbol",
+        "tag",
+    )
 
     def __init__(self, spec_text: str, symbol: str, start: int, end: int, seal_at: int) -> None:
         self.spec_text = spec_text
@@ -95,6 +119,7 @@ class OpenBar:
         self.gaps = 0
         self.progress = 0.0  # the family's measure towards its closing condition
         self.tag: Any = None  # the family's plain data about this bar (families with columns)
+        self.revision = -1  # its last publication's revision (-1: not published yet)
         self.accs: list[Accumulator] = []
 
     def finish(self, layout: BarLayout, complete: bool, empty_window: bool, family_state: Any) -> Bar:
@@ -104,6 +129,8 @@ class OpenBar:
             row.extend([None] * layout.family_width)
         for acc in self.accs:
             acc.emit(row, self, empty_window)
+        if layout.revisions:
+            row.append(self.revision if self.revision >= 0 else 0)
         row.append(complete)
         if layout.family_width:
             layout.family.emit(row, self, family_state, layout.index)
@@ -121,4 +148,10 @@ class OpenBar:
             self.progress,
             [acc.to_state() for acc in self.accs],
             self.tag,
+            self.revision,
         ]
+
+    def copy(self, layout: BarLayout) -> OpenBar:
+        """An independent copy (its accumulators too): a published bar that may still be
+        revised stays open while its copy is sealed and published."""
+        return layout.bar_from_state(self.to_state())

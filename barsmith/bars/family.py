@@ -57,6 +57,7 @@ class SpecContext:
 
     calendars: Calendars | None = None  # trading calendars (the sessions settings)
     outside: str = "drop"  # session families: "drop" messages outside sessions, or give them "bars"
+    revisions: bool = False  # bars may be revised (revision_window_ms > 0): they carry ``revision``
 
 
 @mypyc_attr(allow_interpreted_subclasses=True)  # an extension point: may be subclassed outside barsmith

@@ -55,6 +55,7 @@ class BarSpec:
     groups: tuple[str, ...] = DEFAULT_GROUPS
     interval_ns: int = 0
     threshold: float = 0.0
+    revisions: bool = False  # bars may be revised: they carry a ``revision`` column
 
     @property
     def is_time(self) -> bool:
@@ -63,7 +64,7 @@ class BarSpec:
     @property
     def columns(self) -> tuple[Column, ...]:
         """The columns of this spec's bars, in order (frame, groups, ``complete``)."""
-        return layout_columns([GROUPS[name] for name in self.groups], self.family.columns)
+        return layout_columns([GROUPS[name] for name in self.groups], self.family.columns, self.revisions)
 
     @property
     def file_stem(self) -> str:
@@ -84,12 +85,13 @@ class BarSpec:
             raise BarSpecError(f"bad bar spec {text!r}: expected {_forms()}")
         if not sep or not arg.strip():
             raise BarSpecError(f"bad bar spec {text!r}: missing the value after '{keyword}:'")
-        family = parser(text, arg, context if context is not None else SpecContext())
+        context = context if context is not None else SpecContext()
+        family = parser(text, arg, context)
         groups = _groups(text, group_text if at else None, default_groups)
         interval_ns = family.interval_ns if isinstance(family, TimeFamily) else 0
         threshold = family.threshold if isinstance(family, ThresholdFamily) else 0.0
         kind = BarKind(keyword) if keyword in _BUILT_IN else None
-        return cls(text, kind, family, groups, interval_ns, threshold)
+        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions)
 
 
 def _forms() -> str:

@@ -291,3 +291,34 @@ def test_a_bad_calendar_file_is_one_clear_error(tmp_path: Any, capsys: pytest.Ca
     code = main(args)
     err = capsys.readouterr().err
     assert code == 2 and "Mars/Olympus" in err and "not an IANA time zone" in err and "\n" not in err.strip()
+
+
+def test_session_bars_match_pandas_resample_in_local_time() -> None:
+    # pandas (a general-purpose reference library): resample("1h", offset="30min") on New
+    # York local time gives half-past bins, [start, end) labelled by their start; inside a
+    # 09:30-16:00 session they are barsmith's session:1h bars, across the US DST change
+    # of 2027-03-14 too. pandas' last bin of a day runs to 16:30, barsmith's ends at 16:00.
+    import pandas as pd
+
+    rng = random.Random(11)
+    times = []
+    for day in (date(2027, 3, 11), date(2027, 3, 12), date(2027, 3, 15), date(2027, 3, 16)):
+        (session,) = calendars().venues["NYC"].sessions_of(day)
+        times += sorted(rng.randrange(session.open_ns, session.close_ns) for _ in range(60))
+    recs = [
+        trade("AUREL.NYC", ts, i + 1, round(rng.uniform(9, 11), 2), float(rng.randint(1, 9)))
+        for i, ts in enumerate(times)
+    ]
+    bars, _ = run(recs, "session:1h")
+    ours = pd.DataFrame([b.as_dict() for b in bars]).set_index("start")
+
+    frame = pd.DataFrame(recs)
+    frame["time"] = pd.to_datetime(frame["ts"], unit="ns", utc=True).dt.tz_convert("America/New_York")
+    px = frame.set_index("time")["trade_px"]
+    ref = px.resample("1h", offset="30min").ohlc()
+    ref["volume"] = frame.set_index("time")["trade_qty"].resample("1h", offset="30min").sum()
+    ref = ref.dropna()
+    assert [stamp.value for stamp in ref.index] == list(ours.index)
+    for column in ("open", "high", "low", "close", "volume"):
+        assert list(ours[column]) == list(ref[column]), column
+    assert [stamp.strftime("%H:%M") for stamp in ref.index[:7]] == [f"{h:02d}:30" for h in range(9, 16)]
