@@ -31,6 +31,7 @@ from barsmith.errors import (
 )
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import MalformedTickError, RejectReason, Tick, decode_tick
+from barsmith.readback import read_bars
 from barsmith.replay import replay_files
 from barsmith.runner import Runner, RunSummary
 from barsmith.settings import Settings, load_settings
@@ -65,5 +66,6 @@ __all__ = [
     "encode_checkpoint",
     "load_settings",
     "parse_specs",
+    "read_bars",
     "replay_files",
 ]

@@ -49,6 +49,7 @@ def encode_checkpoint(engine: Engine, meta: dict[str, Any] | None = None) -> byt
         "specs": [spec.text for spec in engine.specs],
         "layouts": _layouts(engine.specs),
         "lateness_ns": engine.lateness_ns,
+        "revision_window_ns": engine.revision_window_ns,
         "engine": engine.to_state(),
         "meta": meta or {},
     }
@@ -56,7 +57,11 @@ def encode_checkpoint(engine: Engine, meta: dict[str, Any] | None = None) -> byt
 
 
 def decode_checkpoint(
-    data: bytes, specs: Sequence[BarSpec], lateness_ns: int, limits: StreamLimits | None = None
+    data: bytes,
+    specs: Sequence[BarSpec],
+    lateness_ns: int,
+    limits: StreamLimits | None = None,
+    revision_window_ns: int = 0,
 ) -> tuple[Engine, dict[str, Any]]:
     """Rebuild the engine stored in ``data``; raises :class:`CheckpointError` when the
     bytes are not a checkpoint, come from an unknown format version, or were written
@@ -86,18 +91,19 @@ def decode_checkpoint(
     if (
         written_specs != wanted_specs
         or payload.get("lateness_ns") != lateness_ns
+        or payload.get("revision_window_ns", 0) != revision_window_ns
         or [[t, list(g)] for t, g in written_layouts] != _layouts(specs)
     ):
         raise CheckpointError(
             f"checkpoint was written for bars {_describe(written_layouts)} with lateness "
-            f"{payload.get('lateness_ns')} ns, but the settings now say {_describe(_layouts(specs))} with "
-            f"{lateness_ns} ns; restore the old settings, or use a new consumer group and state topic to rebuild "
-            "from the input"
+            f"{payload.get('lateness_ns')} ns and revision window {payload.get('revision_window_ns', 0)} ns, but "
+            f"the settings now say {_describe(_layouts(specs))} with {lateness_ns} ns and {revision_window_ns} ns; "
+            "restore the old settings, or use a new consumer group and state topic to rebuild from the input"
         )
     try:
         if version == 1:
             _upgrade_from_1(payload, specs, limits or StreamLimits())
-        engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits)
+        engine = Engine.from_state(specs, lateness_ns, payload["engine"], limits, revision_window_ns)
     except (KeyError, IndexError, TypeError, ValueError) as exc:
         raise CheckpointError(f"checkpoint is damaged: {describe_error(exc)}") from exc
     meta: dict[str, Any] = payload.get("meta", {})

@@ -38,6 +38,7 @@ from dataclasses import dataclass, field
 from typing import Any, Final
 
 from barsmith.bars.bar import BarLayout, OpenBar
+from barsmith.bars.family import DECLINE
 from barsmith.bars.group import GROUPS, Tracker
 from barsmith.bars.record import Bar
 from barsmith.bars.spec import BarSpec
@@ -67,6 +68,8 @@ class EngineStats:
     time_regressions: int = 0
     rejected: Counter[str] = field(default_factory=Counter)  # by reason (not counting late)
     bars: Counter[str] = field(default_factory=Counter)  # by spec text
+    outside: Counter[str] = field(default_factory=Counter)  # messages a spec's sessions left out, by spec
+    revisions: int = 0  # publications of a bar again, corrected by a straggler
 
     def add(self, other: EngineStats) -> None:
         self.records += other.records
@@ -77,6 +80,8 @@ class EngineStats:
         self.time_regressions += other.time_regressions
         self.rejected.update(other.rejected)
         self.bars.update(other.bars)
+        self.outside.update(other.outside)
+        self.revisions += other.revisions
 
     def since(self, earlier: EngineStats) -> EngineStats:
         """The counts added after ``earlier`` (a copy of these counters taken before)."""
@@ -90,6 +95,8 @@ class EngineStats:
         )
         out.rejected = self.rejected - earlier.rejected
         out.bars = self.bars - earlier.bars
+        out.outside = self.outside - earlier.outside
+        out.revisions = self.revisions - earlier.revisions
         return out
 
     def copy(self) -> EngineStats:
@@ -115,11 +122,22 @@ class _SymbolState:
 class Engine:
     """Builds bars for one ordered stream of tick records."""
 
-    def __init__(self, specs: Sequence[BarSpec], lateness_ns: int, limits: StreamLimits | None = None) -> None:
+    def __init__(
+        self,
+        specs: Sequence[BarSpec],
+        lateness_ns: int,
+        limits: StreamLimits | None = None,
+        revision_window_ns: int = 0,
+    ) -> None:
         if not specs:
             raise ValueError("an engine needs at least one bar spec")
         self.specs: tuple[BarSpec, ...] = tuple(specs)
         self.lateness_ns = lateness_ns
+        # Revisions: a bar closed by time stays revisable this long after it closed (0: never).
+        self.revision_window_ns = revision_window_ns
+        self.revisions = revision_window_ns > 0
+        if any(spec.revisions != self.revisions for spec in self.specs):
+            raise ValueError("bar specs parsed for revisions need an engine with a revision window, and only those")
         self.limits = limits if limits is not None else StreamLimits()
         self.stats = EngineStats()
         # Event-time guards: ticks above the horizon are held (the stream's time is
@@ -147,7 +165,7 @@ class Engine:
                         self._trackers.append(tracker)
         self._tracker_names = [tracker.name for tracker in self._trackers]
         self._layouts = [
-            BarLayout(spec.text, spec.family, [GROUPS[name] for name in spec.groups], tracker_index)
+            BarLayout(spec.text, spec.family, [GROUPS[name] for name in spec.groups], tracker_index, self.revisions)
             for spec in self.specs
         ]
         self._symbols: dict[str, _SymbolState] = {}
@@ -157,7 +175,11 @@ class Engine:
         self._due: list[tuple[int, int, OpenBar, _SymbolState, int]] = []
         self._next_due = _NO_CLOSE
         self._order = 0
-        self._bars: list[Bar] = []
+        self._bars: list[Bar] = []  # every publication (revisions included)
+        self._final: list[Bar] = []  # revisions: each bar once, when it can change no more
+        # Published bars that may still be revised, by end (then symbol and spec, so that
+        # a restored engine expires them in the same order): (end, symbol, index, bar, state).
+        self._revisable: list[tuple[int, str, int, OpenBar, _SymbolState]] = []
         self._rejects: list[Reject] = []
 
     # -- public API ------------------------------------------------------------------
@@ -206,6 +228,8 @@ class Engine:
             self._closed_through = limit_ns
             if limit_ns >= self._next_due:
                 self._sweep(limit_ns)
+            if self._revisable:
+                self._expire()
 
     def finish(self) -> None:
         """Input ended: decide the held ticks, then emit every open bar, marked
@@ -219,9 +243,14 @@ class Engine:
             for index, bar in enumerate(state.bars):
                 if bar is not None:
                     layout = self._layouts[index]
-                    self._seal(bar, layout, state, until)
-                    self._emit(bar, layout, False, until == bar.start)
+                    if bar.revision >= 0:  # published, revisable no more
+                        self._seal(bar, layout, state, bar.end)
+                        self._publish(bar, layout, True, False, state.family_states[index], final_only=True)
+                    else:
+                        self._seal(bar, layout, state, until)
+                        self._emit(bar, layout, False, until == bar.start, state.family_states[index])
                     state.bars[index] = None
+        self._revisable.clear()
 
     def set_wall_clock(self, now_ns: int) -> None:
         """The live service's wall clock (replay never calls this). A tick more than
@@ -236,6 +265,13 @@ class Engine:
     def take_bars(self) -> list[Bar]:
         """Finished bars since the last call, in the order they closed."""
         bars, self._bars = self._bars, []
+        return bars
+
+    def take_final_bars(self) -> list[Bar]:
+        """Bars that can change no more, since the last call, each once (for sinks that
+        publish only final bars). Without a revision window, every bar is final when it
+        is published: then this is :meth:`take_bars`' list, which the caller takes once."""
+        bars, self._final = self._final, []
         return bars
 
     def take_rejects(self) -> list[Reject]:
@@ -256,7 +292,7 @@ class Engine:
         Finished bars and rejects must have been taken first. Each part serializes
         itself: books, open bars (with their groups' accumulators), families' per-symbol
         state, the event-time guard."""
-        if self._bars or self._rejects:
+        if self._bars or self._final or self._rejects:
             raise StateError("take_bars() and take_rejects() before a checkpoint: output is pending")
         bar_ids: dict[int, int] = {}
         bars: list[list[Any]] = []
@@ -301,15 +337,23 @@ class Engine:
                 stats.time_regressions,
                 dict(stats.rejected),
                 dict(stats.bars),
+                dict(stats.outside),
+                stats.revisions,
             ],
         }
 
     @classmethod
     def from_state(
-        cls, specs: Sequence[BarSpec], lateness_ns: int, data: dict[str, Any], limits: StreamLimits | None = None
+        cls,
+        specs: Sequence[BarSpec],
+        lateness_ns: int,
+        data: dict[str, Any],
+        limits: StreamLimits | None = None,
+        revision_window_ns: int = 0,
     ) -> Engine:
-        """Rebuild an engine from :meth:`to_state` output (same specs and lateness)."""
-        engine = cls(specs, lateness_ns, limits)
+        """Rebuild an engine from :meth:`to_state` output (same specs, lateness and
+        revision window)."""
+        engine = cls(specs, lateness_ns, limits, revision_window_ns)
         layouts = engine._layouts
         bars = [layouts[int(index)].bar_from_state(item) for index, item in data["bars"]]
         families = [layout.family for layout in layouts]
@@ -323,11 +367,16 @@ class Engine:
                 if name in tracked:
                     value, since = tracked[name]
                     state.tracked[k], state.since[k] = value, int(since)
-            state.family_states = [f.state_from_data(d) for f, d in zip(families, family_data, strict=True)]
+            state.family_states = [f.state_from_data(sym, d) for f, d in zip(families, family_data, strict=True)]
             state.bars = [None if ref is None else bars[int(ref)] for ref in refs]
         for end, order, ref, sym, index in data["due"]:
             engine._due.append((int(end), int(order), bars[int(ref)], engine._symbols[str(sym)], int(index)))
         heapq.heapify(engine._due)
+        for state in engine._symbols.values():
+            for index, bar in enumerate(state.bars):
+                if bar is not None and bar.revision >= 0:
+                    engine._revisable.append((bar.end, state.book.symbol, index, bar, state))
+        heapq.heapify(engine._revisable)
         engine._next_due = engine._due[0][0] if engine._due else _NO_CLOSE
         engine._watermark = int(data["watermark"])
         engine._horizon = int(data["horizon"])
@@ -340,10 +389,13 @@ class Engine:
         stats.gaps, stats.late, stats.time_regressions = int(values[3]), int(values[4]), int(values[5])
         stats.rejected.update({str(k): int(v) for k, v in values[6].items()})
         stats.bars.update({str(k): int(v) for k, v in values[7].items()})
+        if len(values) > 8:
+            stats.outside.update({str(k): int(v) for k, v in values[8].items()})
+            stats.revisions = int(values[9])
         return engine
 
     def _new_symbol(self, sym: str) -> _SymbolState:
-        families = [layout.family.new_state() for layout in self._layouts]
+        families = [layout.family.new_state(sym) for layout in self._layouts]
         state = self._symbols[sym] = _SymbolState(sym, len(self._layouts), len(self._trackers), families)
         return state
 
@@ -415,6 +467,8 @@ class Engine:
                 self._closed_through = limit
                 if limit >= self._next_due:
                     self._sweep(limit)
+                if self._revisable:
+                    self._expire()
 
         px = tick.trade_px
         qty = 0.0
@@ -428,10 +482,12 @@ class Engine:
         # Every spec's bar, through its family's fixed calls (no family-specific code).
         late_specs: list[str] | None = None
         closing: list[int] | None = None
+        revised: list[int] | None = None
         for index in range(len(layouts)):
             layout = layouts[index]
             family = layout.family
             bar = bars[index]
+            fstate = state.family_states[index]
             if bar is not None and t >= bar.seal_at:
                 # The symbol moved past this bar: freeze it (before this message's
                 # effect on the book). A bar closed by time waits to be due; any
@@ -439,28 +495,48 @@ class Engine:
                 self._seal(bar, layout, state, bar.end)
                 bars[index] = None
                 if not family.closes_by_time:
-                    self._emit(bar, layout, True, bar.end == bar.start)
+                    self._emit(bar, layout, True, bar.end == bar.start, fstate)
+                elif bar.revision >= 0:  # published: the symbol moved on, so it is final
+                    self._publish(bar, layout, True, False, fstate, final_only=True)
+                elif family.fills:
+                    following = self._fill(state, index, bar.end, t)
+                    if following is not None and t < following[0]:
+                        # Between the family's intervals (outside its sessions).
+                        stats.outside[layout.spec_text] += 1
+                        self._open_empty(state, index, following)
+                        continue
                 bar = None
             if bar is None:
                 if family.opens_on_trade and px is None:
                     continue
-                start, end, seal_at = family.window(t)
-                if family.closes_by_time and end <= self._closed_through:
+                start, end, seal_at = family.window(t, fstate)
+                if start == DECLINE:
+                    stats.outside[layout.spec_text] += 1
+                    if family.fills:
+                        self._open_empty(state, index, family.next_window(t, fstate))
+                    continue
+                closed = family.closes_by_time and end <= self._closed_through
+                if closed and end <= self._closed_through - self.revision_window_ns:
                     if late_specs is None:
                         late_specs = []
                     late_specs.append(layout.spec_text)
                     continue
                 bar = bars[index] = layout.new_bar(tick.sym, start, end, seal_at)
-                self._opened(bar, layout, state)
-                if family.closes_by_time:
+                self._opened(bar, layout, state, fstate)
+                if family.closes_by_time and not closed:
                     self._push_due(bar, state, index)
             bar.messages += 1
             bar.gaps += gap
+            if self.revisions and family.closes_by_time and bar.end <= self._closed_through:
+                # A straggler inside the revision window: its bar is published again.
+                if revised is None:
+                    revised = []
+                revised.append(index)
             if px is not None:
                 accs = bar.accs
                 for j in layout.trade_accs:
                     accs[j].trade(px, qty)
-                if family.counts_trades and family.trade(bar, state.family_states[index], px, qty, t):
+                if family.counts_trades and family.trade(bar, fstate, px, qty, t):
                     if closing is None:
                         closing = []
                     closing.append(index)
@@ -494,6 +570,11 @@ class Engine:
                             accs[j].held(slot, old, since, t, bar.start)
                 state.tracked[k] = value
                 state.since[k] = t
+        if revised is not None:
+            for index in revised:
+                bar = bars[index]
+                assert bar is not None
+                self._revise(bar, self._layouts[index], state, index)
         if closing is not None:
             for index in closing:
                 bar = bars[index]
@@ -501,10 +582,12 @@ class Engine:
                 layout = layouts[index]
                 self._seal(bar, layout, state, t)
                 bars[index] = None
-                self._emit(bar, layout, True, t == bar.start)
+                self._emit(bar, layout, True, t == bar.start, state.family_states[index])
 
-    def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState) -> None:
+    def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState, family_state: Any) -> None:
         """A new bar learns the tracked values in effect (before its first message)."""
+        if layout.family.has_columns:
+            layout.family.opened(bar, family_state)
         accs = bar.accs
         for k, j, slot in layout.tracked:
             accs[j].opened(slot, state.tracked[k])
@@ -555,16 +638,94 @@ class Engine:
         while due and due[0][0] <= limit_ns:
             end, _, bar, state, index = heapq.heappop(due)
             layout = self._layouts[index]
+            fstate = state.family_states[index]
             if state.bars[index] is bar:
                 # Still the symbol's open bar: its last message is the symbol's last.
+                if complete and self.revisions and not layout.family.fills:
+                    # Published, but kept open for stragglers inside the revision window.
+                    self._revise(bar, layout, state, index)
+                    continue
                 self._seal(bar, layout, state, end if complete else min(end, self._watermark))
                 state.bars[index] = None
-            self._emit(bar, layout, complete, False)
+                if complete and layout.family.fills:
+                    # The symbol's next interval, open until a message or the clock.
+                    self._open_empty(state, index, self._fill(state, index, end, end))
+            self._emit(bar, layout, complete, False, fstate)
         self._next_due = due[0][0] if due else _NO_CLOSE
 
-    def _emit(self, bar: OpenBar, layout: BarLayout, complete: bool, empty_window: bool) -> None:
-        self.stats.bars[bar.spec_text] += 1
-        self._bars.append(bar.finish(layout.names, complete, empty_window))
+    def _fill(self, state: _SymbolState, index: int, after: int, now: int) -> tuple[int, int] | None:
+        """A ``fills`` family: bars for the intervals from ``after`` that ended by
+        ``now``, without messages (sealed at once, emitted when due); returns the next
+        interval, which has not ended."""
+        layout = self._layouts[index]
+        family = layout.family
+        fstate = state.family_states[index]
+        window = family.next_window(after, fstate)
+        while window is not None and window[1] <= now:
+            bar = layout.new_bar(state.book.symbol, window[0], window[1], window[1])
+            self._opened(bar, layout, state, fstate)
+            self._seal(bar, layout, state, window[1])
+            self._push_due(bar, state, index)
+            window = family.next_window(window[1], fstate)
+        return window
+
+    def _open_empty(self, state: _SymbolState, index: int, window: tuple[int, int] | None) -> None:
+        """Keep ``window`` open in the symbol's slot, without messages, until a message
+        lands in it or the clock closes it (then it is a filled bar)."""
+        if window is None:
+            return
+        layout = self._layouts[index]
+        bar = state.bars[index] = layout.new_bar(state.book.symbol, window[0], window[1], window[1])
+        self._opened(bar, layout, state, state.family_states[index])
+        self._push_due(bar, state, index)
+
+    def _emit(self, bar: OpenBar, layout: BarLayout, complete: bool, empty_window: bool, family_state: Any) -> None:
+        """Publish a bar that can change no more (to every sink)."""
+        self._publish(bar, layout, complete, empty_window, family_state)
+
+    def _publish(
+        self,
+        bar: OpenBar,
+        layout: BarLayout,
+        complete: bool,
+        empty_window: bool,
+        family_state: Any,
+        final: bool = True,
+        final_only: bool = False,
+    ) -> None:
+        """``final``: the bar can change no more (sinks of final bars take it too);
+        ``final_only``: its last revision was already published (only they take it)."""
+        record = bar.finish(layout, complete, empty_window, family_state)
+        if not final_only:
+            self.stats.bars[bar.spec_text] += 1
+            self._bars.append(record)
+        if self.revisions and (final or final_only):
+            self._final.append(record)
+
+    def _revise(self, bar: OpenBar, layout: BarLayout, state: _SymbolState, index: int) -> None:
+        """Publish (again) a revisable bar whose interval is closed: a sealed copy goes out,
+        the bar itself stays open for stragglers until the window passes."""
+        first = bar.revision < 0
+        bar.revision += 1
+        if first:
+            heapq.heappush(self._revisable, (bar.end, state.book.symbol, index, bar, state))
+        else:
+            self.stats.revisions += 1
+        copy = bar.copy(layout)
+        self._seal(copy, layout, state, bar.end)
+        self._publish(copy, layout, True, False, state.family_states[index], final=False)
+
+    def _expire(self) -> None:
+        """Bars whose revision window passed can change no more: final, and let go."""
+        limit = self._closed_through - self.revision_window_ns
+        revisable = self._revisable
+        while revisable and revisable[0][0] <= limit:
+            end, _, index, bar, state = heapq.heappop(revisable)
+            if state.bars[index] is bar:
+                layout = self._layouts[index]
+                self._seal(bar, layout, state, end)
+                self._publish(bar, layout, True, False, state.family_states[index], final_only=True)
+                state.bars[index] = None
 
 
 def _reject_of(

@@ -47,8 +47,16 @@ def replay_files(
         row_group_rows=pq_settings.row_group_rows,
         max_file_rows=pq_settings.max_file_rows,
         compression=pq_settings.compression,
+        final_only=pq_settings.output_mode == "final",
     )
     runner = Runner(
-        specs, settings.lateness_ns, source, [sink], ParquetRejectSink(out), progress, limits=settings.stream_limits()
+        specs,
+        settings.lateness_ns,
+        source,
+        [sink],
+        ParquetRejectSink(out),
+        progress,
+        limits=settings.stream_limits(),
+        revision_window_ns=settings.revision_window_ns,
     )
     return runner.run()

@@ -55,6 +55,10 @@ class RunSummary:
         ]
         for spec, count in s.bars.items():
             lines.append(f"bars {spec:<11}{count:>14,}")
+        if s.revisions:
+            lines.append(f"revised bars    {s.revisions:>14,}")
+        for spec, count in s.outside.items():
+            lines.append(f"outside sessions, {spec}: {count:,} messages (not in its bars)")
         lines.append(f"elapsed         {self.elapsed_s:>14.2f} s   ({self.ticks_per_s:,.0f} ticks/s)")
         if self.interrupted:
             lines.append("interrupted: open bars were flushed as incomplete")
@@ -78,12 +82,14 @@ class Runner:
         housekeeping_interval_s: float | None = None,
         limits: StreamLimits | None = None,
         engines: dict[str, Engine] | None = None,
+        revision_window_ns: int = 0,
     ) -> None:
         """``limits``: the event-time guards and bounds of every engine (default: the
         defaults); ``engines``: the table of per-stream engines to fill (default: a new one)."""
         self.specs = tuple(specs)
         self.lateness_ns = lateness_ns
         self.limits = limits
+        self.revision_window_ns = revision_window_ns
         self.source = source
         self.sinks = tuple(sinks)
         self.reject_sink = reject_sink
@@ -202,7 +208,7 @@ class Runner:
     def engine_for(self, stream: str) -> Engine:
         engine = self.engines.get(stream)
         if engine is None:
-            engine = self.engines[stream] = Engine(self.specs, self.lateness_ns, self.limits)
+            engine = self.engines[stream] = Engine(self.specs, self.lateness_ns, self.limits, self.revision_window_ns)
         return engine
 
     async def process_batch(self, batch: RecordBatch) -> None:
@@ -213,11 +219,14 @@ class Runner:
         await self.deliver(batch.stream, engine)
 
     async def deliver(self, stream: str, engine: Engine) -> None:
-        """Hand an engine's finished bars and rejects to the sinks."""
+        """Hand an engine's finished bars and rejects to the sinks (with a revision
+        window: every revision, or each bar once when final, as each sink asks)."""
         bars = engine.take_bars()
-        if bars:
-            for sink in self.sinks:
-                await sink.publish(stream, bars)
+        final = engine.take_final_bars() if engine.revisions else bars
+        for sink in self.sinks:
+            mine = final if sink.final_only else bars
+            if mine:
+                await sink.publish(stream, mine)
         rejects = engine.take_rejects()
         if rejects:
             await self.reject_sink.write(rejects)

@@ -8,7 +8,9 @@ Cheap checks happen when the object is built; every problem is reported at once 
 
 from __future__ import annotations
 
+import dataclasses
 import difflib
+import functools
 import json
 import os
 import tomllib
@@ -35,6 +37,8 @@ from pydantic_settings import (
     TomlConfigSettingsSource,
 )
 
+from barsmith.bars.calendar import Calendars, load_calendars
+from barsmith.bars.family import SpecContext
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
@@ -50,6 +54,9 @@ class ParquetSettings(BaseModel):
     max_file_rows: int = Field(5_000_000, gt=0, description="a file rolls after this many bars")
     roll_interval_s: float | None = Field(None, gt=0, description="a file rolls after this many seconds")
     compression: Literal["zstd", "snappy", "gzip", "none"] = "zstd"
+    output_mode: Literal["revisions", "final"] = Field(
+        "revisions", description="with revision_window_ms: write every revision, or each bar once when final"
+    )
 
 
 class SecuritySettings(BaseModel):
@@ -91,6 +98,9 @@ class KafkaSettings(BaseModel):
     poll_timeout_ms: int = Field(200, gt=0, le=10_000)
     commit_interval_s: float = Field(5.0, gt=0)
     output_compression: Literal["zstd", "lz4", "gzip", "none"] = "zstd"
+    output_mode: Literal["revisions", "final"] = Field(
+        "revisions", description="with revision_window_ms: publish every revision, or each bar once when final"
+    )
     output_linger_ms: int = Field(5, ge=0, le=10_000)
     session_timeout_ms: int = Field(10_000, ge=1_000, le=300_000, description="group member declared dead after")
     state_topic: str | None = Field(None, description="checkpoints (compacted); default <group_id>.barsmith-state")
@@ -168,6 +178,26 @@ class EventTimeSettings(BaseModel):
     )
 
 
+class SessionSettings(BaseModel):
+    """Trading calendars for ``session:`` bars (README, "Sessions")."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    calendars_file: Path | None = Field(None, description="TOML calendar file: venues, sessions, symbol mapping")
+    outside: Literal["drop", "bars"] = Field("drop", description="messages outside sessions: drop (counted), or bars")
+
+    def context(self) -> SpecContext:
+        """What session families need to parse: the calendars, loaded (cached)."""
+        path = self.calendars_file
+        if path is None:
+            return SpecContext(None, self.outside)
+        try:
+            stamp = path.stat().st_mtime_ns
+        except OSError:
+            return SpecContext(load_calendars(path), self.outside)  # says what is wrong with it
+        return SpecContext(_load_calendars_cached(str(path), stamp), self.outside)
+
+
 class LimitsSettings(BaseModel):
     """Bounds that keep memory in check under hostile input."""
 
@@ -187,13 +217,17 @@ class Settings(BaseSettings):
         validate_default=True,
     )
 
-    # Before ``bars``: the specs' validation reads it.
+    # Before ``bars``: the specs' validation reads these two.
+    sessions: SessionSettings = Field(default_factory=SessionSettings)
     bar_groups: list[str] = Field(
         default_factory=lambda: list(DEFAULT_GROUPS),
         description="statistic groups of a bar spec that names none (spec@group,...); core is always carried",
     )
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
     lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
+    revision_window_ms: int = Field(
+        0, ge=0, le=7 * 86_400_000, description="a straggler this long after its time bar closed revises it (0: late)"
+    )
     parquet: ParquetSettings = Field(default_factory=ParquetSettings)
     kafka: KafkaSettings = Field(default_factory=KafkaSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)
@@ -214,14 +248,17 @@ class Settings(BaseSettings):
     @field_validator("bars")
     @classmethod
     def _specs_parse(cls, value: list[str], info: ValidationInfo) -> list[str]:
+        sessions = info.data.get("sessions")
         try:
-            parse_specs(value, info.data.get("bar_groups", DEFAULT_GROUPS))
-        except BarSpecError as exc:
+            context = sessions.context() if isinstance(sessions, SessionSettings) else None
+            parse_specs(value, info.data.get("bar_groups", DEFAULT_GROUPS), context)
+        except (BarSpecError, ConfigError) as exc:
             raise ValueError(str(exc)) from None
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        return parse_specs(self.bars, self.bar_groups)
+        context = dataclasses.replace(self.sessions.context(), revisions=self.revision_window_ms > 0)
+        return parse_specs(self.bars, self.bar_groups, context)
 
     @property
     def state_topic(self) -> str:
@@ -230,6 +267,10 @@ class Settings(BaseSettings):
     @property
     def lateness_ns(self) -> int:
         return self.lateness_ms * 1_000_000
+
+    @property
+    def revision_window_ns(self) -> int:
+        return self.revision_window_ms * 1_000_000
 
     def stream_limits(self) -> StreamLimits:
         """The per-stream guards and bounds the engines apply."""
@@ -263,6 +304,11 @@ class Settings(BaseSettings):
         if toml_file is not None:
             sources.append(TomlConfigSettingsSource(settings_cls, toml_file=toml_file))
         return tuple(sources)
+
+
+@functools.lru_cache(maxsize=8)
+def _load_calendars_cached(path: str, mtime_ns: int) -> Calendars:
+    return load_calendars(path)
 
 
 def _ns(seconds: float) -> int:

@@ -42,6 +42,7 @@ def test_public_names_are_pinned() -> None:
         "encode_checkpoint",
         "load_settings",
         "parse_specs",
+        "read_bars",
         "replay_files",
     ]
     assert sorted(barsmith.__all__) == sorted(expected)

@@ -1,10 +1,10 @@
 """Stage 3: bar specs, bar families (where a bar starts and closes), statistic groups
 (what a bar carries) and the column table.
 
-Importing this package registers the built-in families (``time``, ``ticks``,
-``volume``, ``notional``) and statistic groups (``core``, ``spread``).
+Importing this package registers the built-in families (``time``, ``session``,
+``ticks``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``).
 """
 
-from barsmith.bars import core, interval, spread, threshold
+from barsmith.bars import core, interval, session, spread, threshold
 
-__all__ = ["core", "interval", "spread", "threshold"]
+__all__ = ["core", "interval", "session", "spread", "threshold"]

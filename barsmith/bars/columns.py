@@ -51,3 +51,9 @@ FRAME_TAIL: Final = (
         show=True,
     ),
 )
+REVISION: Final = Column(
+    "revision",
+    "int64",
+    False,
+    "with revision_window_ms: 0 for a bar's first publication, one more for each correction by a straggler",
+)

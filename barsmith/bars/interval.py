@@ -4,7 +4,9 @@ window can replace it."""
 
 from __future__ import annotations
 
-from barsmith.bars.family import BarFamily, register_family
+from typing import Any
+
+from barsmith.bars.family import BarFamily, SpecContext, register_family
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.units import parse_duration_ns
 
@@ -16,13 +18,13 @@ class TimeFamily(BarFamily):
         super().__init__("time", closes_by_time=True, opens_on_trade=False, counts_trades=False)
         self.interval_ns = interval_ns
 
-    def window(self, t: int) -> tuple[int, int, int]:
+    def window(self, t: int, state: Any) -> tuple[int, int, int]:
         start = t - t % self.interval_ns
         end = start + self.interval_ns
         return start, end, end
 
 
-def parse_time(text: str, arg: str) -> BarFamily:
+def parse_time(text: str, arg: str, context: SpecContext) -> BarFamily:
     try:
         return TimeFamily(parse_duration_ns(arg))
     except ConfigError as exc:

@@ -18,8 +18,8 @@ from typing import Final
 
 import barsmith.bars  # noqa: F401  (registers the built-in families and groups)
 from barsmith.bars.bar import BAR_COLUMNS, DEFAULT_COLUMNS, layout_columns
-from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, Column
-from barsmith.bars.family import FAMILIES, BarFamily
+from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, REVISION, Column
+from barsmith.bars.family import FAMILIES, FAMILY_COLUMNS, BarFamily, SpecContext
 from barsmith.bars.group import GROUPS
 from barsmith.bars.interval import TimeFamily
 from barsmith.bars.threshold import ThresholdFamily
@@ -33,6 +33,7 @@ class BarKind(enum.Enum):
     """The built-in bar families, by spec keyword."""
 
     TIME = "time"
+    SESSION = "session"
     TICKS = "ticks"
     VOLUME = "volume"
     NOTIONAL = "notional"
@@ -54,6 +55,7 @@ class BarSpec:
     groups: tuple[str, ...] = DEFAULT_GROUPS
     interval_ns: int = 0
     threshold: float = 0.0
+    revisions: bool = False  # bars may be revised: they carry a ``revision`` column
 
     @property
     def is_time(self) -> bool:
@@ -62,7 +64,7 @@ class BarSpec:
     @property
     def columns(self) -> tuple[Column, ...]:
         """The columns of this spec's bars, in order (frame, groups, ``complete``)."""
-        return layout_columns([GROUPS[name] for name in self.groups])
+        return layout_columns([GROUPS[name] for name in self.groups], self.family.columns, self.revisions)
 
     @property
     def file_stem(self) -> str:
@@ -70,8 +72,11 @@ class BarSpec:
         return re.sub(r"[^A-Za-z0-9.+-]+", "_", self.text.strip())
 
     @classmethod
-    def parse(cls, text: str, default_groups: Sequence[str] = DEFAULT_GROUPS) -> BarSpec:
-        """Parse a spec; raises :class:`BarSpecError` with a one-line explanation."""
+    def parse(
+        cls, text: str, default_groups: Sequence[str] = DEFAULT_GROUPS, context: SpecContext | None = None
+    ) -> BarSpec:
+        """Parse a spec; raises :class:`BarSpecError` with a one-line explanation.
+        ``context``: what some families need (calendars for ``session:``)."""
         rule, at, group_text = text.partition("@")
         kind_text, sep, arg = rule.partition(":")
         keyword = kind_text.strip().lower()
@@ -80,16 +85,23 @@ class BarSpec:
             raise BarSpecError(f"bad bar spec {text!r}: expected {_forms()}")
         if not sep or not arg.strip():
             raise BarSpecError(f"bad bar spec {text!r}: missing the value after '{keyword}:'")
-        family = parser(text, arg)
+        context = context if context is not None else SpecContext()
+        family = parser(text, arg, context)
         groups = _groups(text, group_text if at else None, default_groups)
         interval_ns = family.interval_ns if isinstance(family, TimeFamily) else 0
         threshold = family.threshold if isinstance(family, ThresholdFamily) else 0.0
         kind = BarKind(keyword) if keyword in _BUILT_IN else None
-        return cls(text, kind, family, groups, interval_ns, threshold)
+        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions)
 
 
 def _forms() -> str:
-    forms = {"time": "time:<duration>", "ticks": "ticks:<N>", "volume": "volume:<Q>", "notional": "notional:<X>"}
+    forms = {
+        "time": "time:<duration>",
+        "session": "session:<duration|full>",
+        "ticks": "ticks:<N>",
+        "volume": "volume:<Q>",
+        "notional": "notional:<X>",
+    }
     listed = [forms.get(keyword, f"{keyword}:<...>") for keyword in FAMILIES]
     return ", ".join(listed[:-1]) + " or " + listed[-1] + " (optionally @<groups>)"
 
@@ -126,7 +138,9 @@ def column_table() -> str:
     ``barsmith columns``): the frame first, then each statistic group's, ``complete``."""
     lines = ["| column | group | type | null | meaning |", "|---|---|---|---|---|"]
     rows = [("frame", c) for c in FRAME_HEAD]
+    rows += [(f"{keyword}:", c) for keyword, columns in FAMILY_COLUMNS.items() for c in columns]
     rows += [(group.name, c) for group in GROUPS.values() for c in group.columns]
+    rows += [("revisions", REVISION)]
     rows += [("frame", c) for c in FRAME_TAIL]
     for group, column in rows:
         null = "yes" if column.nullable else "no"
@@ -141,11 +155,13 @@ def shown_columns() -> list[str]:
     return shown + [c.name for c in FRAME_TAIL if c.show]
 
 
-def parse_specs(texts: list[str], default_groups: Sequence[str] = DEFAULT_GROUPS) -> list[BarSpec]:
+def parse_specs(
+    texts: list[str], default_groups: Sequence[str] = DEFAULT_GROUPS, context: SpecContext | None = None
+) -> list[BarSpec]:
     """Parse several specs, rejecting an empty list and repeats."""
     if not texts:
         raise BarSpecError("no bar spec given (e.g. --bars time:1m)")
-    specs = [BarSpec.parse(text, default_groups) for text in texts]
+    specs = [BarSpec.parse(text, default_groups, context) for text in texts]
     seen: set[str] = set()
     for spec in specs:
         if spec.text in seen:

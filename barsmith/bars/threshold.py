@@ -12,7 +12,7 @@ import math
 import re
 from typing import TYPE_CHECKING, Any, Final
 
-from barsmith.bars.family import NEVER, BarFamily, register_family
+from barsmith.bars.family import NEVER, BarFamily, SpecContext, register_family
 from barsmith.errors import BarSpecError
 
 if TYPE_CHECKING:
@@ -33,7 +33,7 @@ class ThresholdFamily(BarFamily):
         self.threshold = threshold
         self.limit = threshold * (1.0 - THRESHOLD_RTOL)
 
-    def window(self, t: int) -> tuple[int, int, int]:
+    def window(self, t: int, state: Any) -> tuple[int, int, int]:
         return t, t, NEVER
 
 
@@ -58,7 +58,7 @@ class NotionalFamily(ThresholdFamily):
         return bar.progress >= self.limit
 
 
-def parse_trade_count(text: str, arg: str) -> BarFamily:
+def parse_trade_count(text: str, arg: str, context: SpecContext) -> BarFamily:
     if not arg.strip().isdigit() or int(arg) <= 0:
         raise BarSpecError(f"bad bar spec {text!r}: ticks needs a whole number of trades > 0")
     return TradeCountFamily("ticks", float(int(arg)))
@@ -70,11 +70,11 @@ def _amount(keyword: str, text: str, arg: str) -> float:
     return float(arg)
 
 
-def parse_volume(text: str, arg: str) -> BarFamily:
+def parse_volume(text: str, arg: str, context: SpecContext) -> BarFamily:
     return VolumeFamily("volume", _amount("volume", text, arg))
 
 
-def parse_notional(text: str, arg: str) -> BarFamily:
+def parse_notional(text: str, arg: str, context: SpecContext) -> BarFamily:
     return NotionalFamily("notional", _amount("notional", text, arg))
 
 

@@ -141,7 +141,15 @@ def _exactly_once(settings: Settings, observe: PublishObserver) -> _Parts:
     reject_sink: RejectSink = LogRejectSink()
     if settings.kafka.output_topic:
         topic = settings.kafka.output_topic
-        sinks.append(KafkaBarSink(settings.kafka, topic, on_published=observe, producer_for=bus.producer_for))
+        sinks.append(
+            KafkaBarSink(
+                settings.kafka,
+                topic,
+                on_published=observe,
+                producer_for=bus.producer_for,
+                final_only=settings.kafka.output_mode == "final",
+            )
+        )
     pq = settings.parquet
     if pq.dir is not None:
         pq.dir.mkdir(parents=True, exist_ok=True)
@@ -151,6 +159,7 @@ def _exactly_once(settings: Settings, observe: PublishObserver) -> _Parts:
             roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
             carry_max_rows=pq.row_group_rows,
             compression=pq.compression,
+            final_only=pq.output_mode == "final",
         )
         sinks.append(part_sink)
         reject_sink = part_sink
@@ -162,7 +171,14 @@ def _at_least_once(settings: Settings, observe: PublishObserver) -> _Parts:
     sinks: list[BarSink] = []
     reject_sink: RejectSink = LogRejectSink()
     if settings.kafka.output_topic:
-        sinks.append(KafkaBarSink(settings.kafka, settings.kafka.output_topic, on_published=observe))
+        sinks.append(
+            KafkaBarSink(
+                settings.kafka,
+                settings.kafka.output_topic,
+                on_published=observe,
+                final_only=settings.kafka.output_mode == "final",
+            )
+        )
     pq = settings.parquet
     if pq.dir is not None:
         pq.dir.mkdir(parents=True, exist_ok=True)
@@ -176,6 +192,7 @@ def _at_least_once(settings: Settings, observe: PublishObserver) -> _Parts:
                 roll_interval_s=pq.roll_interval_s if pq.roll_interval_s is not None else 300.0,
                 compression=pq.compression,
                 file_prefix=prefix,
+                final_only=pq.output_mode == "final",
             )
         )
         reject_sink = ParquetRejectSink(pq.dir, f"_rejects-{prefix.rstrip('-')}.parquet")

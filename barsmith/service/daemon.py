@@ -63,6 +63,7 @@ class _CountingSink:
     def __init__(self, inner: BarSink, metrics: ServiceMetrics) -> None:
         self.inner = inner
         self.name = inner.name
+        self.final_only = inner.final_only
         self._metrics = metrics
 
     async def start(self) -> None:
@@ -118,6 +119,7 @@ class ServiceRunner(Runner):
             housekeeping_interval_s=settings.service.housekeeping_interval_s,
             limits=settings.stream_limits(),
             engines=self.partitions.engines,
+            revision_window_ns=settings.revision_window_ns,
         )
         self.delivery = delivery(
             DeliveryContext(self.partitions, source, self._hand_over, self._flush_sinks, self.metrics)

@@ -110,6 +110,7 @@ class ExactlyOnce:
         self._specs = settings.bar_specs()
         self._lateness_ns = settings.lateness_ns
         self._limits = settings.stream_limits()
+        self._revision_window_ns = settings.revision_window_ns
         self._sinks = tuple(sinks)
         self._bus = bus
         self._context = context
@@ -336,12 +337,14 @@ class ExactlyOnce:
         stream = owner.stream
         position = self._positions.partitions[stream].next_offset
         if owner.checkpoint is not None:
-            engine, meta = decode_checkpoint(owner.checkpoint, self._specs, self._lateness_ns, self._limits)
+            engine, meta = decode_checkpoint(
+                owner.checkpoint, self._specs, self._lateness_ns, self._limits, self._revision_window_ns
+            )
             owner.offset = int(meta["offset"])
             owner.sink_states = dict(meta.get("sinks", {}))
             owner.epoch = int(meta.get("epoch", 0))
         else:
-            engine = Engine(self._specs, self._lateness_ns, self._limits)
+            engine = Engine(self._specs, self._lateness_ns, self._limits, self._revision_window_ns)
             owner.sink_states = {}
         for sink in self._sinks:
             await sink.restore(stream, owner.sink_states.get(sink.name), owner.offset or 0)

@@ -14,9 +14,11 @@ class BarSink(Protocol):
     """A plug-in bar sink: ``start`` opens connections (before the first publish);
     ``publish`` may buffer; ``flush`` makes everything published so far durable;
     ``close`` flushes and releases resources. ``stream`` names the ordered input
-    stream (engine) the bars came from."""
+    stream (engine) the bars came from. ``final_only``: with a revision window, the
+    sink takes each bar once, when it can change no more, instead of every revision."""
 
     name: str
+    final_only: bool
 
     async def start(self) -> None: ...
 
@@ -55,7 +57,8 @@ class MemorySink:
 
     name = "memory"
 
-    def __init__(self) -> None:
+    def __init__(self, final_only: bool = False) -> None:
+        self.final_only = final_only
         self.bars: list[Bar] = []
         self.rejects: list[Reject] = []
         self.flushes = 0

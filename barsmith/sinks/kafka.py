@@ -60,7 +60,10 @@ class KafkaBarSink:
         topic: str,
         on_published: Callable[[Bar, float], None] | None = None,
         producer_for: Callable[[str], Any] | None = None,
+        *,
+        final_only: bool = False,
     ) -> None:
+        self.final_only = final_only  # with a revision window: final bars only
         self._kafka = kafka
         self.topic = topic
         self._producer: Any = None

@@ -137,7 +137,9 @@ class ParquetBarSink:
         roll_interval_s: float | None = None,
         compression: str = "zstd",
         file_prefix: str = "",
+        final_only: bool = False,
     ) -> None:
+        self.final_only = final_only  # with a revision window: final bars only
         self.directory = directory
         # pyarrow imports its pandas shim on the first conversion; pay that at start-up
         # rather than in the middle of a run (it takes about a second).
@@ -306,7 +308,9 @@ class ParquetPartSink:
         carry_max_rows: int = 4_096,
         compression: str = "zstd",
         keep_rejects: bool = True,
+        final_only: bool = False,
     ) -> None:
+        self.final_only = final_only  # with a revision window: final bars only
         self.directory = directory
         bars_table([])  # pay pyarrow's lazy pandas import at start-up (see ParquetBarSink)
         self._stems = {spec.text: spec.file_stem for spec in specs}

@@ -112,13 +112,13 @@ class Instants(BarFamily):
     def __init__(self) -> None:
         super().__init__("instants", closes_by_time=False, opens_on_trade=False, counts_trades=False)
 
-    def window(self, t: int) -> tuple[int, int, int]:
+    def window(self, t: int, state: Any) -> tuple[int, int, int]:
         return t, t, t + 1  # the symbol's next message at a later time seals it
 
 
 @pytest.fixture
 def instants_family() -> Iterator[None]:
-    register_family("instants", lambda text, arg: Instants())
+    register_family("instants", lambda text, arg, context: Instants())
     try:
         yield
     finally:

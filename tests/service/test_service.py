@@ -80,7 +80,7 @@ async def read_records(bootstrap: str, topic: str) -> list[Any]:
 OUTPUT_PARTITIONS = 8  # the service creates a missing output topic with kafka.output_partitions (8)
 
 
-async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
+async def read_topic(bootstrap: str, topic: str, columns: tuple[str, ...] = BAR_COLUMNS) -> pd.DataFrame:
     """The bar topic, read_committed, as a frame with the Parquet columns and types."""
     from aiokafka.partitioner import DefaultPartitioner
 
@@ -88,14 +88,14 @@ async def read_topic(bootstrap: str, topic: str) -> pd.DataFrame:
     partitions = list(range(OUTPUT_PARTITIONS))
     for record in await read_records(bootstrap, topic):
         bar = msgpack.unpackb(record.value)
-        assert list(bar) == list(BAR_COLUMNS)  # exactly the Parquet columns
+        assert list(bar) == list(columns)  # exactly the Parquet columns
         assert record.key.decode("utf-8") == bar["symbol"]
         # Keyed records go where Kafka's default partitioner (murmur2 of the key, as
         # aiokafka implements it) puts them: consumers keyed by symbol rely on it.
         assert record.partition == DefaultPartitioner()(record.key, partitions, partitions)
         assert dict(record.headers)["spec"].decode("utf-8") == bar["spec"]
         rows.append(bar)
-    frame = pd.DataFrame(rows, columns=list(BAR_COLUMNS))
+    frame = pd.DataFrame(rows, columns=list(columns))
     for column in ("start", "end"):
         frame[column] = pd.to_datetime(frame[column], unit="ns", utc=True)
     return frame.sort_values(KEY).reset_index(drop=True)
@@ -437,3 +437,56 @@ async def test_the_readme_reads_the_bus_as_it_shows(kafka_bootstrap: str, small_
     assert len(lines) == len(expected) > 0
     spec, symbol, day, clock = lines[0].split()[:4]
     assert spec in SPECS and symbol.endswith(".KMX") and day.startswith("2027-01-01") and clock.endswith("+00:00")
+
+
+async def test_revisions_on_the_bus_and_in_parquet_are_replays(
+    kafka_bootstrap: str, small_feed: Path, tmp_path: Path
+) -> None:
+    """A feed whose first symbol arrives two minutes late throughout (its own order kept):
+    the service publishes the same revisions as replay of the same input order, on the
+    bus and in Parquet (appended rows), and read_bars gives the latest of each."""
+    import gzip
+
+    from barsmith import read_bars
+    from barsmith.ingest.framing import FrameReader
+
+    records = []
+    with gzip.open(small_feed) as handle:
+        for batch, _, _ in FrameReader(handle).batches(10_000):
+            records += [r.to_wire() if hasattr(r, "to_wire") else r for r in batch]
+    late = next(r["sym"] for r in records if isinstance(r, dict) and "sym" in r)
+    keyed = []
+    for i, record in enumerate(records):
+        delay = 0
+        if isinstance(record, dict) and record.get("sym") == late:
+            delay = 1_500  # records: about two minutes of this feed
+        keyed.append((i + delay, i, record))
+    feed = tmp_path / "straggling.msgpack"
+    feed.write_bytes(b"".join(msgpack.packb(r, use_bin_type=True) for _, _, r in sorted(keyed, key=lambda k: k[:2])))
+    config = tmp_path / "revisions.toml"
+    config.write_text("revision_window_ms = 600000\n")
+
+    await publish_feed([feed], kafka(kafka_bootstrap), "straggling-ticks", partitions=8)
+    settings = service_settings(
+        kafka_bootstrap,
+        "straggling-ticks",
+        revision_window_ms=600_000,
+        kafka={"output_topic": "revised-bars"},
+        parquet={"dir": tmp_path / "service"},
+    )
+    await build_service(settings).serve()
+    await asyncio.to_thread(
+        replay_files, [feed], tmp_path / "replay", config_file=config, bars=SPECS, partitions=8, replace=True
+    )
+    order = [*KEY, "revision"]
+    expected = pd.read_parquet(tmp_path / "replay").sort_values(order).reset_index(drop=True)
+    assert (expected["revision"] > 0).any(), "no straggler landed inside the window"
+    got = parquet_frame(tmp_path / "service").sort_values(order).reset_index(drop=True)
+    assert_same_bars(expected, got)
+    bus = await read_topic(kafka_bootstrap, "revised-bars", tuple(expected.columns))
+    assert_same_bars(expected, bus.sort_values(order).reset_index(drop=True))
+    latest = read_bars(tmp_path / "service")
+    minutes = latest[latest["spec"] == "time:1m"]
+    assert not minutes.duplicated(["symbol", "start"]).any()
+    highest = expected[expected["spec"] == "time:1m"].groupby(["symbol", "start"])["revision"].max()
+    assert minutes.set_index(["symbol", "start"])["revision"].sort_index().equals(highest.sort_index())
