@@ -32,7 +32,7 @@ def replay_files(
     """
     settings = load_settings(config_file, bars=list(bars) if bars is not None else None, lateness_ms=lateness_ms)
     specs = settings.bar_specs()
-    source = FileSource(files, partitions=partitions)
+    source = FileSource(files, partitions=partitions, max_record_bytes=settings.max_record_bytes)
     out = Path(out_dir)
     prepare_output_dir(out, replace)
     pq_settings = settings.parquet

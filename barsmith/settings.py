@@ -23,6 +23,7 @@ from pydantic_settings import (
 
 from barsmith.bars.spec import BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES
 
 
 class ParquetSettings(BaseModel):
@@ -132,6 +133,12 @@ class Settings(BaseSettings):
 
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
     lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
+    max_record_bytes: int = Field(
+        DEFAULT_MAX_RECORD_BYTES,
+        ge=1_024,
+        le=1 << 30,
+        description="a record (tick map or batch) larger than this is rejected as too_large",
+    )
     parquet: ParquetSettings = Field(default_factory=ParquetSettings)
     kafka: KafkaSettings = Field(default_factory=KafkaSettings)
     metrics: MetricsSettings = Field(default_factory=MetricsSettings)

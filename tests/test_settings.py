@@ -42,3 +42,10 @@ def test_every_problem_is_listed(tmp_path: Path) -> None:
 def test_missing_config_file() -> None:
     with pytest.raises(ConfigError, match="config file not found"):
         load_settings("/nonexistent/barsmith.toml")
+
+
+def test_max_record_bytes_default_and_bounds() -> None:
+    assert load_settings().max_record_bytes == 4 * 1024 * 1024
+    assert load_settings(max_record_bytes=2048).max_record_bytes == 2048
+    with pytest.raises(ConfigError, match="max_record_bytes"):
+        load_settings(max_record_bytes=10)

@@ -18,7 +18,7 @@ import msgpack
 
 from barsmith.errors import ConfigError, InputError
 from barsmith.ingest.fastwire import new_scanner
-from barsmith.ingest.framing import new_unpacker
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, MAX_KEPT_BYTES, new_unpacker
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
 from barsmith.settings import KafkaSettings
@@ -103,8 +103,11 @@ class KafkaSource:
     partitions are taken away, so the runner can flush and commit them.
     """
 
-    def __init__(self, kafka: KafkaSettings) -> None:
+    def __init__(self, kafka: KafkaSettings, max_record_bytes: int = DEFAULT_MAX_RECORD_BYTES) -> None:
+        """A record value larger than ``max_record_bytes`` is rejected as ``too_large``
+        without being decoded."""
         self.settings = kafka
+        self._max_record_bytes = max_record_bytes
         self.partitions: dict[str, PartitionState] = {}
         self.on_revoked: Callable[[list[str]], Any] | None = None
         self.on_assigned: Callable[[list[str]], Any] | None = None
@@ -295,8 +298,13 @@ class KafkaSource:
         rejects: list[Reject] = []
         unpackb = msgpack.unpackb
         scan = self._scanner.scan_value if self._scanner is not None else None
+        max_bytes = self._max_record_bytes
         for record in records:
             value = record.value
+            if value is not None and len(value) > max_bytes:
+                why = f"{len(value):,} bytes, above max_record_bytes {max_bytes:,}"
+                rejects.append(Reject(name, record.offset, RejectReason.TOO_LARGE, why, bytes(value[:MAX_KEPT_BYTES])))
+                continue
             # Usual shapes are decoded straight into ticks (see barsmith.ingest.fastwire).
             if scan is not None and value is not None:
                 ticks = scan(value)

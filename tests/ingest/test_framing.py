@@ -92,7 +92,7 @@ def test_damage_that_begins_with_a_decodable_byte_is_still_one_span() -> None:
     records = packed(3)
     junk = b"\x05\x07\xc1\xc1"  # two small ints, then bytes that are no msgpack
     data = records[0] + junk + records[1] + records[2]
-    objects, offsets, rejects = read_all(data)
+    objects, _offsets, rejects = read_all(data)
     assert [seq_of(o) for o in objects] == [1, 2, 3]
     assert rejects == [(len(records[0]), RejectReason.NOT_MSGPACK)]
 
@@ -100,7 +100,7 @@ def test_damage_that_begins_with_a_decodable_byte_is_still_one_span() -> None:
 def test_well_formed_values_between_records_are_records() -> None:
     records = packed(2)
     data = records[0] + msgpack.packb(5) + msgpack.packb({"x": 1}) + records[1]
-    objects, offsets, rejects = read_all(data)
+    objects, _offsets, rejects = read_all(data)
     assert rejects == [] and objects[1:3] == [5, {"x": 1}]  # the engine rejects them, by their own reason
 
 
