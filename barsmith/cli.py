@@ -54,7 +54,12 @@ def build_parser() -> argparse.ArgumentParser:
     commands = parser.add_subparsers(dest="command", required=True, parser_class=_Parser)
 
     replay = commands.add_parser("replay", help="build bars from recorded feed files into Parquet")
-    replay.add_argument("files", nargs="+", metavar="FILE", help="recorded feeds (msgpack, optionally .gz), in order")
+    replay.add_argument(
+        "files",
+        nargs="+",
+        metavar="FILE",
+        help="recorded feeds (msgpack or framed recordings, optionally .gz), in order",
+    )
     replay.add_argument("--bars", action="append", required=True, metavar="SPEC", help="bar spec, repeatable")
     replay.add_argument("--out", required=True, type=Path, metavar="DIR", help="output directory for Parquet")
     replay.add_argument("--lateness", type=_duration_ms, metavar="DUR", help="allowed lateness (default 2s)")
@@ -121,6 +126,9 @@ def build_parser() -> argparse.ArgumentParser:
     record.add_argument("--topic", required=True)
     record.add_argument("--out", required=True, type=Path, metavar="FILE")
     record.add_argument("--idle", type=_duration_ms, default=5000, metavar="DUR", help="stop after DUR without data")
+    record.add_argument(
+        "--plain", action="store_true", help="a bare concatenation of the records (default: checksummed blocks)"
+    )
     record.set_defaults(handler=_cmd_record)
 
     config = commands.add_parser("config", help="inspect settings")
@@ -260,7 +268,9 @@ def _cmd_record(args: argparse.Namespace) -> int:
 
     from barsmith.tools.bus import record_topic
 
-    count = asyncio.run(record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0))
+    count = asyncio.run(
+        record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0, plain=args.plain)
+    )
     print(f"recorded {count:,} records from {args.topic} to {args.out}", file=sys.stderr)
     return EXIT_OK
 

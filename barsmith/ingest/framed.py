@@ -35,7 +35,7 @@ from __future__ import annotations
 import struct
 from collections.abc import Iterable
 from dataclasses import dataclass
-from typing import IO, Final
+from typing import IO, Final, Protocol
 
 import google_crc32c
 
@@ -104,10 +104,16 @@ def _block_header(data: bytes, at: int) -> tuple[int, int] | None:
     return int(length), int(payload_check)
 
 
+class Writable(Protocol):
+    """Where a recording goes: a file, a gzip stream."""
+
+    def write(self, data: bytes, /) -> int: ...
+
+
 class FramedWriter:
     """Writes records (whole msgpack values, as bytes) into a framed recording."""
 
-    def __init__(self, handle: IO[bytes], block_target_bytes: int = BLOCK_TARGET_BYTES) -> None:
+    def __init__(self, handle: Writable, block_target_bytes: int = BLOCK_TARGET_BYTES) -> None:
         self._handle = handle
         self._target = block_target_bytes
         self._parts: list[bytes] = []
