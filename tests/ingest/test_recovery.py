@@ -109,20 +109,22 @@ WIRE_KEYS = {"sym", "ts", "seq", "kind", "bid_px", "bid_qty", "ask_px", "ask_qty
 
 
 def absorbs_records(span: bytes, rest: bytes) -> bool:
-    """Whether the span with the records after it parses as one record that ends on a
-    record boundary: a tick with only wire-format keys whose last value takes the next
+    """Whether the span with the records after it parses as values of which the last
+    is one record that ends on a record boundary: a tick with only wire-format keys whose last value takes the next
     record's first bytes and ends where a record starts, or an array header whose items
     are the records that follow. Then the bytes hold no damage to find: a batch, or a
     tick, and what follows."""
     data = span + rest
     unpacker = msgpack.Unpacker(raw=False, strict_map_key=False)
     unpacker.feed(data)
-    try:
-        value = unpacker.unpack()
-    except (msgpack.OutOfData, ValueError, TypeError, msgpack.UnpackException):
-        return False
-    end = unpacker.tell()
-    if end <= len(span):
+    end = 0
+    while end < len(span):  # the values the span begins with, up to one that runs past it
+        try:
+            value = unpacker.unpack()
+        except (msgpack.OutOfData, ValueError, TypeError, msgpack.UnpackException):
+            return False
+        end = unpacker.tell()
+    if end == len(span):
         return False
     if isinstance(value, list):
         return bool(value) and all(wire(item) is not None for item in value)
@@ -163,7 +165,8 @@ def items_of(value: Any) -> list[Any]:
 
 
 def starts_with_whole_value(span: bytes) -> bool:
-    """Whether the span's first msgpack value ends inside the span."""
+    """Whether the span's first msgpack value ends inside it (with a batch header after
+    it: inside the two)."""
     unpacker = msgpack.Unpacker(raw=False, strict_map_key=False)
     unpacker.feed(span)
     try:
@@ -210,8 +213,11 @@ def test_damage_costs_only_the_damaged_bytes(pieces: list[Piece], block: int, ba
                 # that took its header (resync restarts at a tick map).
                 assert header, f"valid record at {start} not recovered"
                 assert index > 0 and not layout[index - 1][2].valid
-                covering = [r for r in rejects if r.offset < start + header <= r.offset + r.size]
-                assert covering and covering[0].offset + covering[0].size == start + header
+                assert start + header in record_at  # its first tick, at its own offset
+                # Its header went with the damage: to a reject, or to a malformed value
+                # that the damage's last byte began.
+                _, what, value = [s for s in starts if s[0] < start + header][-1]
+                assert what == "reject" or all(wire(item) is None for item in items_of(value))
             # No reject starts inside a valid record.
             assert not [r for r in rejects if start < r.offset < end]
             continue
@@ -222,14 +228,15 @@ def test_damage_costs_only_the_damaged_bytes(pieces: list[Piece], block: int, ba
         for offset, what, value in inside:
             if what == "record":
                 assert all(wire(item) is None for item in items_of(value)), f"a tick made up at {offset}"
-        if not starts_with_whole_value(piece.data):
+        nxt = layout[index + 1][2] if index + 1 < len(layout) else None
+        after = nxt.data[: _batch_header(nxt.data)] if nxt is not None else b""
+        if not starts_with_whole_value(piece.data + after):
             # 4. Damage that does not begin with a whole value: one reject covering it.
             assert start in reject_at, f"span at {start} has no reject of its own: {inside}"
             reject = reject_at[start]
             last = end == len(data)
             allowed = {RejectReason.NOT_MSGPACK} | ({RejectReason.TRUNCATED, RejectReason.TOO_LARGE} if last else set())
             assert reject.reason in allowed
-            nxt = layout[index + 1][2] if index + 1 < len(layout) else None
             reach = reject.offset + reject.size
             assert reach == end or (nxt is not None and nxt.valid and reach == end + _batch_header(nxt.data))
             assert len(inside) == 1
