@@ -69,6 +69,9 @@ MAX_MAP_ITEMS: Final = 4096
 MAX_KEPT_BYTES: Final = 4096
 # The first decode window of a record the scanner did not take (a tick is ~100 bytes).
 FIRST_WINDOW_BYTES: Final = 512
+# An array is decoded in one piece up to this size (a batch of some hundred ticks);
+# a longer one item by item, so that garbage with an array header stops early.
+WHOLE_ARRAY_BYTES: Final = 64 * 1024
 # A tick map is looked for (as the place to resume after damage, or inside a value
 # that may hold one) only up to this size: garbage that could start one would
 # otherwise cost a decode of every record it swallows.
@@ -401,7 +404,7 @@ class FrameReader:
         """The value at ``_buf[at]``: (end, object, the record as the scanner gives it
         or None), or an answer of :meth:`_decode_array` / :meth:`_decode_at`."""
         if self._buf[at] in _ARRAY_HEADERS:
-            end, obj = self._decode_at(at, FIRST_WINDOW_BYTES)
+            end, obj = self._decode_at(at, min(self._max_record, WHOLE_ARRAY_BYTES))
             if end == _BIG:
                 return self._decode_array(at)
         else:
@@ -416,7 +419,7 @@ class FrameReader:
         buf = self._buf
         max_bytes = self._max_record
         reach = min(len(buf) - at, max_bytes)
-        window = FIRST_WINDOW_BYTES * 8
+        window = WHOLE_ARRAY_BYTES * 2
         while True:
             size = min(window, reach)
             unpacker = new_unpacker(max_bytes)
@@ -677,6 +680,8 @@ def _declared_size(buf: bytes, at: int) -> int:
     if at >= len(buf):
         return 0
     head = buf[at]
+    if head < 0xC4:  # maps, arrays, small values: the usual record ends here
+        return 0
     if head in (0xC4, 0xC7, 0xD9):  # bin8, ext8, str8
         width = 1
     elif head in (0xC5, 0xC8, 0xDA, 0xDC, 0xDE):  # bin16, ext16, str16, array16, map16
