@@ -117,7 +117,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _add_replay(commands: argparse._SubParsersAction[_Parser]) -> None:
     replay = commands.add_parser("replay", help="build bars from recorded feed files into Parquet")
-    replay.add_argument("files", nargs="+", metavar="FILE", help="recorded feeds (msgpack, optionally .gz), in order")
+    replay.add_argument(
+        "files",
+        nargs="+",
+        metavar="FILE",
+        help="recorded feeds (msgpack or framed recordings, optionally .gz), in order",
+    )
     replay.add_argument(
         "--bars", action="append", required=True, metavar="SPEC", help="bar spec (time:1m, volume:5000 ...), repeatable"
     )
@@ -254,6 +259,9 @@ def _add_record(commands: argparse._SubParsersAction[_Parser]) -> None:
     record.add_argument("--out", required=True, type=Path, metavar="FILE", help="output file (.gz to compress)")
     record.add_argument(
         "--idle", type=_duration_ms, default=5000, metavar="DUR", help="stop after DUR without data (default 5s)"
+    )
+    record.add_argument(
+        "--plain", action="store_true", help="a bare concatenation of the records (default: checksummed blocks)"
     )
     record.set_defaults(handler=_cmd_record)
 
@@ -445,7 +453,9 @@ def _cmd_record(args: argparse.Namespace) -> int:
 
     from barsmith.tools.feeds import record_topic
 
-    count = asyncio.run(record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0))
+    count = asyncio.run(
+        record_topic(_kafka_for(args.bootstrap), args.topic, args.out, args.idle / 1000.0, plain=args.plain)
+    )
     print(f"recorded {count:,} records from {args.topic} to {args.out}", file=sys.stderr)
     return EXIT_OK
 

@@ -37,7 +37,7 @@ def replay_files(
         config_file, flags=flags, bars=list(bars) if bars is not None else None, lateness_ms=lateness_ms
     )
     specs = settings.bar_specs()
-    source = FileSource(files, partitions=partitions)
+    source = FileSource(files, partitions=partitions, max_record_bytes=settings.limits.max_record_bytes)
     out = Path(out_dir)
     prepare_output_dir(out, replace)
     pq_settings = settings.parquet

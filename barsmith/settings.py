@@ -42,6 +42,7 @@ from barsmith.bars.family import SpecContext
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES
 
 
 class ParquetSettings(BaseModel):
@@ -204,6 +205,12 @@ class LimitsSettings(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     max_symbols: int = Field(200_000, gt=0, description="distinct symbols per stream (replay, or a partition)")
+    max_record_bytes: int = Field(
+        DEFAULT_MAX_RECORD_BYTES,
+        ge=1_024,
+        le=1 << 30,
+        description="a record (tick map or batch) larger than this is rejected as too_large",
+    )
 
 
 class Settings(BaseSettings):

@@ -130,3 +130,10 @@ def test_a_secret_is_never_quoted_back(tmp_path: Path) -> None:
     text = problem(config_file=toml)
     assert text.startswith("kafka.security.sasl_password: must be text (from config file")
     assert "123456789" not in text
+
+
+def test_max_record_bytes_default_and_bounds() -> None:
+    assert load_settings().limits.max_record_bytes == 4 * 1024 * 1024
+    assert load_settings(limits={"max_record_bytes": 2048}).limits.max_record_bytes == 2048
+    with pytest.raises(ConfigError, match="max_record_bytes"):
+        load_settings(limits={"max_record_bytes": 10})

@@ -260,6 +260,9 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
     Py_ssize_t sym_len = 0;
     int64_t ts = -1, seq = -1;
     int is_snapshot = 0, kind_seen = 0, present = 0;
+    /* Fields seen so far: a repeated key goes to the general path, where msgpack
+     * checks every occurrence (an overwritten sym could hold invalid UTF-8). */
+    unsigned int seen = 0;
     /* has[i]: the field carried a number (not nil); num[i]: that number. */
     int has[F_TRADE_QTY + 1] = {0};
     double num[F_TRADE_QTY + 1] = {0};
@@ -281,6 +284,10 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
         if (field == F_UNKNOWN) {
             return NOT_SIMPLE; /* an unknown key: let the general path skip it */
         }
+        if (seen & (1u << field)) {
+            return NOT_SIMPLE;
+        }
+        seen |= 1u << field;
         Value v = {V_NIL, 0, 0.0, NULL, 0};
         pos = read_value(data, key_end, end, &v);
         if (pos < 0) {

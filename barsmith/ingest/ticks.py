@@ -35,6 +35,8 @@ class RejectReason(enum.Enum):
 
     NOT_MSGPACK = "not_msgpack"
     TRUNCATED = "truncated"
+    TOO_LARGE = "too_large"
+    BAD_BLOCK = "bad_block"
     NOT_A_MAP = "not_a_map"
     MISSING_FIELD = "missing_field"
     WRONG_TYPE = "wrong_type"

@@ -118,7 +118,9 @@ def build_service(settings: Settings, *, on_published: PublishObserver | None = 
     if not settings.kafka.output_topic and settings.parquet.dir is None:
         raise ConfigError("no sink: give --output-topic and/or --parquet-dir")
     exactly_once = settings.service.delivery is Delivery.EXACTLY_ONCE
-    source = KafkaSource(settings.kafka, pause_on_assign=exactly_once)
+    source = KafkaSource(
+        settings.kafka, pause_on_assign=exactly_once, max_record_bytes=settings.limits.max_record_bytes
+    )
     partitions = Partitions()
     metrics = service_metrics(partitions, source)
     observe: PublishObserver = metrics.observe_publish

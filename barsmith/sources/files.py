@@ -1,4 +1,5 @@
-"""Recorded feed files (plain or gzip-compressed msgpack), read in the order given as one stream."""
+"""Recorded feed files (plain msgpack or framed recordings, either one optionally
+gzip-compressed), read in the order given as one stream."""
 
 from __future__ import annotations
 
@@ -12,7 +13,7 @@ from typing import IO, Any, Final, cast
 
 from barsmith.bus.topics import partition_for, symbol_of
 from barsmith.errors import ConfigError, InputError
-from barsmith.ingest.framing import FrameReader, FramingReject
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, FrameReader, FramingReject
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
 from barsmith.sources.base import RecordBatch
@@ -52,15 +53,21 @@ class FileSource:
     """Replays recorded files as one ordered stream, then ends."""
 
     def __init__(
-        self, paths: Sequence[str | os.PathLike[str]], batch_records: int = BATCH_RECORDS, partitions: int = 1
+        self,
+        paths: Sequence[str | os.PathLike[str]],
+        batch_records: int = BATCH_RECORDS,
+        partitions: int = 1,
+        max_record_bytes: int = DEFAULT_MAX_RECORD_BYTES,
     ) -> None:
         """``partitions > 1`` splits the stream by symbol the way the bus does (see
-        :func:`barsmith.bus.topics.partition_for`): one ordered stream per partition."""
+        :func:`barsmith.bus.topics.partition_for`): one ordered stream per partition. A
+        record larger than ``max_record_bytes`` is rejected as ``too_large``."""
         if partitions < 1:
             raise ConfigError(f"partitions must be >= 1, got {partitions}")
         self.paths = check_input_paths(paths)
         self._partitions = partitions
         self._batch_records = batch_records
+        self._max_record_bytes = max_record_bytes
         self._total_bytes = sum(p.stat().st_size for p in self.paths)
         self._done_bytes = 0
         self._stopped = False
@@ -83,7 +90,7 @@ class FileSource:
             except OSError as exc:
                 raise InputError(f"cannot read {path}: {exc.strerror or exc}") from exc
             with raw, stream:
-                reader = FrameReader(stream)
+                reader = FrameReader(stream, max_record_bytes=self._max_record_bytes)
                 while not reader.done:
                     if self._stopped:
                         return

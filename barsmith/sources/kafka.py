@@ -23,7 +23,7 @@ from barsmith.bus.clients import new_consumer, start_client
 from barsmith.bus.topics import stream_name
 from barsmith.errors import StateError, describe_error
 from barsmith.ingest.fastwire import new_scanner
-from barsmith.ingest.framing import new_unpacker
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, MAX_KEPT_BYTES, new_unpacker
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason, Tick
 from barsmith.settings import KafkaSettings
@@ -119,8 +119,13 @@ class KafkaSource:
     wrong place.
     """
 
-    def __init__(self, kafka: KafkaSettings, *, pause_on_assign: bool = False) -> None:
+    def __init__(
+        self, kafka: KafkaSettings, *, pause_on_assign: bool = False, max_record_bytes: int = DEFAULT_MAX_RECORD_BYTES
+    ) -> None:
+        """A record value larger than ``max_record_bytes`` is rejected as ``too_large``
+        without being decoded."""
         self.settings = kafka
+        self._max_record_bytes = max_record_bytes
         self.partitions: dict[str, PartitionPosition] = {}
         self.pause_on_assign = pause_on_assign
         self.started = asyncio.Event()
@@ -287,8 +292,13 @@ class KafkaSource:
         unpackb = msgpack.unpackb
         scan = self._scanner.scan_value if self._scanner is not None else None
         keys = self._keys
+        max_bytes = self._max_record_bytes
         for record in records:
             value = record.value
+            if value is not None and len(value) > max_bytes:
+                why = f"{len(value):,} bytes, above max_record_bytes {max_bytes:,}"
+                rejects.append(Reject(name, record.offset, RejectReason.TOO_LARGE, why, bytes(value[:MAX_KEPT_BYTES])))
+                continue
             decoded: Any
             # Usual shapes are decoded straight into ticks (see barsmith.ingest.fastwire).
             ticks = scan(value) if scan is not None and value is not None else None

@@ -13,6 +13,7 @@ import msgpack
 from barsmith.bus.clients import new_consumer, new_producer, start_client
 from barsmith.bus.topics import ensure_topic, partition_for, symbol_of, topic_partitions
 from barsmith.errors import ConfigError
+from barsmith.ingest.framed import FramedWriter
 from barsmith.ingest.ticks import Tick
 from barsmith.settings import KafkaSettings
 from barsmith.sources.files import FileSource
@@ -136,10 +137,14 @@ def _event_time(record: Any) -> int | None:
     return None
 
 
-async def record_topic(kafka: KafkaSettings, topic: str, out: Path, idle_s: float = 5.0) -> int:
+async def record_topic(kafka: KafkaSettings, topic: str, out: Path, idle_s: float = 5.0, plain: bool = False) -> int:
     """Capture ``topic`` from its beginning to the end offsets seen at start (or until
     ``idle_s`` passes with nothing new) into a replayable file; returns the record count.
-    Partitions are interleaved in the order fetched; each partition stays in order."""
+    Partitions are interleaved in the order fetched; each partition stays in order.
+
+    The file is a framed recording (:mod:`barsmith.ingest.framed`: checksummed blocks,
+    so that damage is found and bounded to its block), or with ``plain`` a bare
+    concatenation of the record values."""
     from aiokafka.structs import TopicPartition
 
     count = await topic_partitions(kafka, topic)
@@ -158,6 +163,7 @@ async def record_topic(kafka: KafkaSettings, topic: str, out: Path, idle_s: floa
         import gzip
 
         with gzip.open(out, "wb") if gzip_out else out.open("wb") as handle:
+            framed = None if plain else FramedWriter(handle)
             while True:
                 positions = [await consumer.position(tp) for tp in tps]
                 done = all(pos >= ends[tp] for pos, tp in zip(positions, tps, strict=True))
@@ -167,9 +173,14 @@ async def record_topic(kafka: KafkaSettings, topic: str, out: Path, idle_s: floa
                 for records in polled.values():
                     for rec in records:
                         if rec.value is not None:
-                            handle.write(rec.value)
+                            if framed is None:
+                                handle.write(rec.value)
+                            else:
+                                framed.write(rec.value)
                             written += 1
                     last_data = time.monotonic()
+                if framed is not None:
+                    framed.flush()  # a recording stopped later keeps every whole poll
     finally:
         await consumer.stop()
     return written

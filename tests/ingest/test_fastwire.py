@@ -158,3 +158,20 @@ def test_symbol_cache_gives_each_symbol_its_own_text() -> None:
             assert scan.tick.sym == name
     too_long = msgpack.packb(tick(sym="Ω" * 65))
     assert scan.scan_record(too_long, 0) == NOT_SIMPLE
+
+
+def test_a_repeated_key_takes_the_general_path() -> None:
+    # msgpack checks every occurrence of a key (here an overwritten sym that is not
+    # UTF-8, which the general path refuses), so the scanner must not take the last one.
+    head = msgpack.packb(tick(ts=T0, seq=1))
+    body = head[1:]  # the four pairs without the map header
+    bad_sym = b"\xa3sym\xa2K\x85"  # "sym": two bytes, not UTF-8
+    record = bytes([0x85]) + bad_sym + body
+    with pytest.raises(ValueError):
+        msgpack.unpackb(record, raw=False)
+    assert scanner().scan_record(record, 0) == NOT_SIMPLE
+    assert scanner().scan_value(record) is None
+    # A repeated key with valid values is still decoded the same way, the general way.
+    twice = bytes([0x85]) + b"\xa3seq\x07" + body
+    assert scanner().scan_record(twice, 0) == NOT_SIMPLE
+    assert decode_tick(msgpack.unpackb(twice)).seq == 1

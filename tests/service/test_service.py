@@ -19,6 +19,7 @@ from factories import free_port_pair
 from prometheus_client.parser import text_string_to_metric_families
 
 from barsmith.bars.bar import BAR_COLUMNS
+from barsmith.ingest.framed import FILE_MAGIC
 from barsmith.replay import replay_files
 from barsmith.service.app import build_service
 from barsmith.settings import KafkaSettings, load_settings
@@ -286,12 +287,16 @@ def test_sigterm_mid_stream_exits_cleanly(kafka_bootstrap: str, tmp_path: Path) 
 async def test_record_then_replay_round_trip(kafka_bootstrap: str, small_feed: Path, tmp_path: Path) -> None:
     settings = kafka(kafka_bootstrap)
     await publish_feed([small_feed], settings, "roundtrip-ticks", partitions=8)
-    recorded = tmp_path / "recorded.msgpack"
+    recorded = tmp_path / "recorded.bsf"
     count = await record_topic(settings, "roundtrip-ticks", recorded, idle_s=5)
     assert count > 40_000
+    assert recorded.read_bytes().startswith(FILE_MAGIC)  # the framed format by default
+    plain = tmp_path / "recorded-plain.msgpack.gz"
+    assert await record_topic(settings, "roundtrip-ticks", plain, idle_s=5, plain=True) == count
     # Recording interleaves partitions but keeps each in order: per-partition bars are equal.
     original = await asyncio.to_thread(replay_frame, small_feed, tmp_path / "a")
     assert_same_bars(original, await asyncio.to_thread(replay_frame, recorded, tmp_path / "b"))
+    assert_same_bars(original, await asyncio.to_thread(replay_frame, plain, tmp_path / "c"))
 
 
 # -- helpers ---------------------------------------------------------------------------
