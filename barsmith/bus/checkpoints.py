@@ -14,7 +14,7 @@ work with aiokafka, whose offset commits in a transaction carry no group generat
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from typing import Any, Protocol
 
 from barsmith.bus.clients import bar_producer, new_consumer, start_client, stop_client
@@ -186,7 +186,9 @@ class MemoryCheckpointBus:
     ``checkpoints`` (stream → latest) and the offset in ``group_offsets`` (stream →
     next offset: the consumer group's, which an in-memory source reads), together.
     ``fail_next(stream, exc)`` makes the stream's next commit raise ``exc``;
-    ``fence(stream)`` plays another producer taking the stream's transactional id."""
+    ``fence(stream)`` plays another producer taking the stream's transactional id;
+    ``after_commit``, when set, is called after every commit (a test's kill switch that
+    acts at a commit, not at whatever moment a polling test wakes up)."""
 
     def __init__(self, group_offsets: dict[str, int] | None = None) -> None:
         self.checkpoints: dict[str, bytes] = {}
@@ -194,6 +196,7 @@ class MemoryCheckpointBus:
         self.commits: list[tuple[str, int]] = []  # (stream, offset) per committed transaction
         self._failures: dict[str, list[BaseException]] = {}
         self._open: dict[str, _MemoryTransaction] = {}
+        self.after_commit: Callable[[], None] | None = None
 
     async def start(self) -> None:
         return None
@@ -241,6 +244,8 @@ class _MemoryTransaction:
         self._bus.checkpoints[self._stream] = checkpoint
         self._bus.group_offsets[self._stream] = offset
         self._bus.commits.append((self._stream, offset))
+        if self._bus.after_commit is not None:
+            self._bus.after_commit()
 
     async def abort(self) -> None:
         self._check()

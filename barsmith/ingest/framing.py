@@ -16,11 +16,12 @@ Corruption never stops a read, and costs only the damaged bytes. The rules:
   hold another record. Any other value is taken as a record only if no valid tick
   record starts strictly inside it ("prefer the smaller records": garbage whose
   length header runs into the records after it would otherwise swallow them). An
-  array whose items are all valid ticks is a batch, and its items' own starts do not
-  count as "inside". A value that is not a valid record (a malformed record) is
-  taken as one only when what follows it is a record boundary too: a valid record,
-  the end of input, or more such values ending in one — so that damage that happens
-  to begin with a decodable byte is still one span.
+  array whose items are all valid ticks is a batch, and neither its items' own starts
+  nor the bytes of an item with only wire-format keys count as "inside". A value that
+  is not a valid record (a malformed record) is taken as one only when what follows it
+  is a record boundary too: a valid record, the end of input, or more such values
+  ending in one — so that damage that happens to begin with a decodable byte is
+  still one span.
 - Otherwise the bytes from there up to the next position where a valid tick record
   starts are one ``not_msgpack`` reject. Reading resumes at a tick map: an array
   header just before it is counted with the damage, and that batch's ticks are read
@@ -391,13 +392,13 @@ class FrameReader:
             return self._skip("a value cut short before a later record", rejects, tail=True)
         if record is None:
             # Not a record that cannot hold another: no valid tick may start inside it.
-            items = _item_starts(self._buf, pos, end, max_bytes) if _valid_batch(obj) else None
-            inner = self._tick_inside(pos + 1, end, items)
+            batch = _valid_batch(obj)
+            inner = self._tick_inside_batch(pos, end) if batch else self._tick_inside(pos + 1, end, None)
             if inner == _MORE:
                 return _MORE
             if inner >= 0:
                 return self._skip_to(inner, "a value that runs into a later record", rejects)
-            if items is None and not _valid_tick(obj):
+            if not batch and not _valid_tick(obj):
                 boundary = self._boundary_after(end)
                 if boundary == _MORE:
                     return _MORE
@@ -590,6 +591,25 @@ class FrameReader:
                     return at if tick_end >= 0 else _MORE
             at += 1
         return _NO
+
+    def _tick_inside_batch(self, at: int, end: int) -> int:
+        """The first position inside the batch at ``_buf[at:end]`` where a valid tick
+        starts that is not one of its items: in its header's bytes, or inside an item
+        that can hold one. An item with only wire-format keys holds scalars only, so a
+        tick map header among its bytes (a float's byte, say) starts nothing it holds,
+        as for such a record on its own. _NO or _MORE."""
+        unpacker = new_unpacker(self._max_record)
+        unpacker.feed(self._buf[at:end])
+        count = unpacker.read_array_header()
+        inner = self._tick_inside(at + 1, at + unpacker.tell(), None)
+        for _ in range(count):
+            if inner != _NO:
+                break
+            start = at + unpacker.tell()
+            item = unpacker.unpack()
+            if not _WIRE_KEYS.issuperset(item):
+                inner = self._tick_inside(start + 1, at + unpacker.tell(), None)
+        return inner
 
     def _boundary_after(self, at: int) -> int:
         """Whether ``_buf[at]`` is a record boundary: a valid record, the end of input,

@@ -250,3 +250,26 @@ def _as_wire(value: Any) -> Any:
     if isinstance(value, list):
         return [_as_wire(v) for v in value]
     return value.to_wire() if isinstance(value, Tick) else value
+
+
+@pytest.mark.parametrize("scanner", SCANNER_MODES, ids=lambda s: "scanner" if s else "general")
+def test_a_map_header_in_a_batch_items_float_is_no_tick_inside_it(scanner: bool) -> None:
+    """A batch of valid ticks is one record even when a float of a wire-keys-only item
+    holds a map header (0x85) that, with the next item's keys, parses as a tick of its
+    own: such an item holds scalars only, as a record on its own does."""
+    flagged = {"sym": "FENWORTH.KMX", "ts": T0, "seq": 0, "kind": "delta", "venue_flags": ["x"]}
+    trade = {
+        "sym": "FENWORTH.KMX",
+        "ts": T0,
+        "seq": 0,
+        "kind": "delta",
+        "trade_px": 1.0,
+        "trade_qty": 8069.186676147585,
+    }
+    batch = msgpack.packb([flagged, trade, flagged])
+    assert b"\x85/" in msgpack.packb(trade["trade_qty"])  # the header the float's bytes hold
+    data = b"\x00" + msgpack.packb(flagged) + b"\x00" + batch + b"\x00"
+    records, rejects = read_all(data, 1, 1, scanner)
+    got = [w for _, value in records for item in items_of(value) if (w := wire(item)) is not None]
+    assert got == [wire(flagged), wire(flagged), wire(trade), wire(flagged)]
+    assert not [r for r in rejects if r.size > 1]

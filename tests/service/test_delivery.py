@@ -140,18 +140,25 @@ async def until(check: Callable[[], bool], task: asyncio.Task[Any], what: str, t
         await asyncio.sleep(0.002)
 
 
-async def crash_when(runner: ServiceRunner, check: Callable[[], bool]) -> None:
-    """Run until ``check()``, then stop without any final flush (a kill between two
-    batches: what is not checkpointed is lost with the process)."""
-    task = asyncio.create_task(runner.serve())
-    await until(check, task, "the service did not get that far")
-    runner.handle_exit()
-    runner.handle_exit()  # the second signal: force_exit skips the final flush
-    await asyncio.wait_for(task, timeout=10)
+async def crash_when(runner: ServiceRunner, bus: Bus, records: int) -> None:
+    """Run until a commit of this service brings the committed offsets to ``records``,
+    then stop without any final flush (a kill between two batches: what is not
+    checkpointed is lost with the process). The kill acts at that commit: a test that
+    polled for the moment could wake up after the service had read everything."""
+    topic = bus.topic
 
+    def kill() -> None:
+        if sum(topic.committed.values()) >= records and runner.total_stats().records > 0 and not runner.force_exit:
+            runner.handle_exit()
+            runner.handle_exit()  # the second signal: force_exit skips the final flush
 
-def checkpointed_past(runner: ServiceRunner, topic: MemoryTopic, records: int) -> Callable[[], bool]:
-    return lambda: sum(topic.committed.values()) >= records and runner.total_stats().records > 0
+    bus.checkpoints.after_commit = kill
+    try:
+        task = asyncio.create_task(runner.serve())
+        await until(lambda: runner.force_exit, task, "the service did not get that far")
+        await asyncio.wait_for(task, timeout=10)
+    finally:
+        bus.checkpoints.after_commit = None
 
 
 def sample(runner: ServiceRunner, name: str, **labels: str) -> float:
@@ -194,7 +201,7 @@ async def test_exactly_once_crashes_lose_and_double_nothing(
         # Killed once checkpoints cover this quarter of the input and the process did
         # some work of its own: at any batch after that.
         runner = exactly_once(bus)
-        await crash_when(runner, checkpointed_past(runner, bus.topic, quarter * total // 4))
+        await crash_when(runner, bus, quarter * total // 4)
     assert 0 < len(bus.sink.bars) < len(expected_bars(feed))
     await asyncio.wait_for(exactly_once(bus).serve(), timeout=30)
     assert rows(bus.sink.bars) == expected_bars(feed)
@@ -362,7 +369,7 @@ async def test_exactly_once_crashes_with_revisions_in_flight_lose_and_double_not
     total = sum(map(len, parts))
     for third in (1, 2):
         runner = exactly_once(bus, revision_window_ms=window_ms)
-        await crash_when(runner, checkpointed_past(runner, bus.topic, third * total // 3))
+        await crash_when(runner, bus, third * total // 3)
     await asyncio.wait_for(exactly_once(bus, revision_window_ms=window_ms).serve(), timeout=30)
     expected: list[Bar] = []
     for records in parts:
