@@ -14,12 +14,13 @@ from pathlib import Path
 from typing import TYPE_CHECKING, NoReturn
 
 from barsmith import __version__
+from barsmith._quick_settings import DEFAULT_METRICS_PORT
 from barsmith.errors import BarsmithError, ConfigError
-from barsmith.settings import DEFAULT_METRICS_PORT, KafkaSettings
 from barsmith.units import parse_duration_ns
 
 if TYPE_CHECKING:
     from barsmith.engine import EngineStats
+    from barsmith.settings import KafkaSettings
 
 EXIT_OK = 0
 EXIT_FAILURE = 1

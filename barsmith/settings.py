@@ -37,6 +37,7 @@ from pydantic_settings import (
     TomlConfigSettingsSource,
 )
 
+from barsmith._quick_settings import DEFAULT_METRICS_PORT, LATENESS_MS_MAX
 from barsmith.bars.calendar import Calendars, load_calendars
 from barsmith.bars.family import SpecContext
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
@@ -124,11 +125,6 @@ class CheckpointSettings(BaseModel):
 
     interval_s: float = Field(2.0, gt=0, le=3_600, description="a partition checkpoints at least this often")
     every_messages: int = Field(200_000, gt=0, description="...and after this many messages, whichever first")
-
-
-# Outside the 9100-9999 range that Prometheus' list of exporter ports has filled, and
-# away from the defaults of common exporters and client libraries (9464, 8000, 2112).
-DEFAULT_METRICS_PORT = 17365
 
 
 class MetricsSettings(BaseModel):
@@ -231,7 +227,7 @@ class Settings(BaseSettings):
         description="statistic groups of a bar spec that names none (spec@group,...); core is always carried",
     )
     bars: list[str] = Field(default_factory=lambda: ["time:1m"], description="bar specs")
-    lateness_ms: int = Field(2_000, ge=0, le=3_600_000, description="allowed event-time lateness")
+    lateness_ms: int = Field(2_000, ge=0, le=LATENESS_MS_MAX, description="allowed event-time lateness")
     revision_window_ms: int = Field(
         0, ge=0, le=7 * 86_400_000, description="a straggler this long after its time bar closed revises it (0: late)"
     )

@@ -29,17 +29,20 @@ exist on a spring-forward day takes the offset from before the change (02:30 bec
 from __future__ import annotations
 
 import fnmatch
-import tomllib
 from dataclasses import dataclass, field
-from datetime import date, datetime, time, timedelta
+from datetime import UTC, date, datetime, time, timedelta
 from pathlib import Path
-from typing import Any, Final
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+from typing import TYPE_CHECKING, Any, Final
 
 from barsmith.errors import ConfigError
 
+if TYPE_CHECKING:
+    from zoneinfo import ZoneInfo
+
 WEEKDAYS: Final = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
-_EPOCH: Final = datetime(1970, 1, 1, tzinfo=ZoneInfo("UTC"))
+# The TOML reader and the zone database load with the first calendar file: every spec
+# parse imports this module, most runs have no calendars.
+_EPOCH: Final = datetime(1970, 1, 1, tzinfo=UTC)
 
 
 @dataclass(frozen=True, slots=True)
@@ -152,6 +155,8 @@ class Calendars:
 
 def load_calendars(path: str | Path) -> Calendars:
     """Read a calendar file; raises :class:`ConfigError` naming every problem."""
+    import tomllib
+
     source = Path(path)
     try:
         data = tomllib.loads(source.read_text(encoding="utf-8"))
@@ -190,6 +195,8 @@ def _venue(name: str, spec: dict[str, Any]) -> Venue:
     extra = set(spec) - {"timezone", "sessions", "weekdays", "holidays", "half_days"}
     if extra:
         raise ConfigError(f"unknown key(s) {', '.join(sorted(extra))}")
+    from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
     try:
         zone = ZoneInfo(str(spec["timezone"]))
     except (ZoneInfoNotFoundError, ValueError, KeyError):

@@ -15,12 +15,14 @@ from __future__ import annotations
 
 import asyncio
 from collections.abc import Callable, Sequence
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 from barsmith.bus.clients import bar_producer, new_consumer, start_client, stop_client
 from barsmith.bus.topics import ensure_topic, partition_for
 from barsmith.errors import SinkError, StateError
-from barsmith.settings import Settings
+
+if TYPE_CHECKING:
+    from barsmith.settings import Settings
 
 # The state topic keeps the latest checkpoint per key; small segments let the
 # log cleaner drop superseded checkpoints soon, so a restore reads little.

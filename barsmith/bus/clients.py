@@ -14,10 +14,12 @@ import logging
 import os
 import socket
 import ssl
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from barsmith.errors import BarsmithError, InputError, describe_error
-from barsmith.settings import KafkaSettings
+
+if TYPE_CHECKING:
+    from barsmith.settings import KafkaSettings
 
 _STOP_TIMEOUT_S = 10.0
 

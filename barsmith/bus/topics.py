@@ -12,12 +12,14 @@ from __future__ import annotations
 
 import functools
 import logging
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from barsmith.bus.clients import new_admin, start_client
 from barsmith.errors import ConfigError
 from barsmith.ingest.ticks import Tick
-from barsmith.settings import KafkaSettings
+
+if TYPE_CHECKING:
+    from barsmith.settings import KafkaSettings
 
 log = logging.getLogger("barsmith.bus")
 

@@ -22,6 +22,7 @@ from barsmith.bars.record import Bar
 from barsmith.bars.spec import DEFAULT_COLUMNS, BarSpec
 from barsmith.errors import ConfigError, SinkError
 from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
+from barsmith.sinks._arrow import column_array
 
 _TS: Final = pa.timestamp("ns", tz="UTC")
 # The column table's types (barsmith.bars.columns) as Arrow types; timestamps are
@@ -64,8 +65,19 @@ def bars_table(bars: Sequence[Bar], schema: pa.Schema = BAR_SCHEMA) -> pa.Table:
     if bars and bars[0].names != names:
         raise SinkError(f"bars of {bars[0].spec} have columns {bars[0].names}, the file {names}")
     columns = list(zip(*(bar.values for bar in bars), strict=True)) if bars else [() for _ in names]
+    return _table(columns, schema)
+
+
+def rejects_table(rejects: Sequence[Reject]) -> pa.Table:
+    """Rejected records as an Arrow table with :data:`REJECT_SCHEMA`."""
+    rows = [r.as_row() for r in rejects]
+    return _table([[row[name] for row in rows] for name in REJECT_COLUMNS], REJECT_SCHEMA)
+
+
+def _table(columns: Sequence[Sequence[Any]], schema: pa.Schema) -> pa.Table:
+    # Not pyarrow.array: it would import pandas (see barsmith.sinks._arrow).
     return pa.Table.from_arrays(
-        [pa.array(col, type=schema.field(i).type) for i, col in enumerate(columns)], schema=schema
+        [column_array(col, schema.field(i).type) for i, col in enumerate(columns)], schema=schema
     )
 
 
@@ -141,9 +153,6 @@ class ParquetBarSink:
     ) -> None:
         self.final_only = final_only  # with a revision window: final bars only
         self.directory = directory
-        # pyarrow imports its pandas shim on the first conversion; pay that at start-up
-        # rather than in the middle of a run (it takes about a second).
-        bars_table([])
         self._stems = {spec.text: spec.file_stem for spec in specs}
         self._schemas = {spec.text: bar_schema(spec.columns) for spec in specs}
         self._row_group_rows = row_group_rows
@@ -234,7 +243,7 @@ class ParquetRejectSink:
         if self._file is None:
             self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
         if self._pending:
-            self._file.write(pa.Table.from_pylist([r.as_row() for r in self._pending], schema=REJECT_SCHEMA))
+            self._file.write(rejects_table(self._pending))
             self._pending = []
 
     async def close(self) -> None:
@@ -312,7 +321,6 @@ class ParquetPartSink:
     ) -> None:
         self.final_only = final_only  # with a revision window: final bars only
         self.directory = directory
-        bars_table([])  # pay pyarrow's lazy pandas import at start-up (see ParquetBarSink)
         self._stems = {spec.text: spec.file_stem for spec in specs}
         self._schemas = {spec.text: bar_schema(spec.columns) for spec in specs}
         self._roll_interval_s = roll_interval_s
@@ -365,7 +373,7 @@ class ParquetPartSink:
                 parts.append(self._write_temp(name, bars_table(bars, self._schemas[text])))
             if buffer.rejects:
                 name = f"_rejects-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
-                table = pa.Table.from_pylist([r.as_row() for r in buffer.rejects], schema=REJECT_SCHEMA)
+                table = rejects_table(buffer.rejects)
                 parts.append(self._write_temp(name, table))
         except OSError as exc:
             raise SinkError(f"cannot write bars to {self.directory}: {exc}") from exc
