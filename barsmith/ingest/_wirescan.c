@@ -41,7 +41,7 @@ enum value_kind { V_NIL, V_INT, V_FLOAT, V_STR };
  * differently from Python's float(int) only beyond 2**53; the general path decides. */
 #define EXACT_INT_LIMIT (((uint64_t)1) << 53)
 
-static PyObject *tick_type = NULL; /* barsmith.ingest.ticks.Tick */
+static PyObject *new_tick = NULL; /* barsmith.ingest.ticks.new_tick: Tick(...) by position */
 
 #define CACHE_SLOTS 256
 
@@ -398,7 +398,13 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
         }
     }
     if (complete) {
-        result = PyObject_Vectorcall(tick_type, args, 11, NULL);
+        result = PyObject_Vectorcall(new_tick, args, 11, NULL);
+    }
+    if (result != NULL && PyObject_GC_IsTracked(result)) {
+        /* A tick holds a str, ints, floats, a bool and Nones: it can never be part of
+         * a reference cycle, so the cyclic collector need not visit it (each young
+         * collection would visit every tick made since the last one). */
+        PyObject_GC_UnTrack(result);
     }
     for (int i = 0; i < 11; i++) {
         Py_XDECREF(args[i]);
@@ -496,6 +502,76 @@ Scanner_scan_record(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
     return PyLong_FromSsize_t(result);
 }
 
+static int
+as_ssize(PyObject *obj, Py_ssize_t *out)
+{
+    *out = PyLong_AsSsize_t(obj);
+    return *out == -1 && PyErr_Occurred() ? -1 : 0;
+}
+
+/* scan_records(data, pos, count, max_bytes, base, records, positions): the loop of
+ * scan_record calls a reader makes, in one call. Appends each record (a tick or a
+ * batch) to records and base + its start to positions, up to count records, while
+ * the next record scans and spans at most max_bytes. Returns (pos, result, last):
+ * where scanning stopped, the answer there (NOT_SIMPLE, INCOMPLETE, or the end of a
+ * record too large to take; INCOMPLETE when data[pos:] is empty or count is 0) and
+ * the start of the last record taken (-1: none). .tick and .batch are left alone. */
+static PyObject *
+Scanner_scan_records(Scanner *self, PyObject *const *args, Py_ssize_t nargs)
+{
+    if (nargs != 7 || !PyList_CheckExact(args[5]) || !PyList_CheckExact(args[6])) {
+        PyErr_SetString(PyExc_TypeError,
+                        "scan_records(data, pos, count, max_bytes, base, records: list, positions: list)");
+        return NULL;
+    }
+    Py_ssize_t count, max_bytes, base;
+    if (as_ssize(args[2], &count) < 0 || as_ssize(args[3], &max_bytes) < 0 || as_ssize(args[4], &base) < 0) {
+        return NULL;
+    }
+    Py_buffer view;
+    Py_ssize_t pos;
+    if (parse_args(args, 2, "scan_records", &view, &pos) < 0) {
+        return NULL;
+    }
+    PyObject *records = args[5];
+    PyObject *positions = args[6];
+    const uint8_t *data = (const uint8_t *)view.buf;
+    Py_ssize_t end = view.len;
+    Py_ssize_t result = INCOMPLETE;
+    Py_ssize_t last = -1;
+    int failed = 0;
+    for (Py_ssize_t taken = 0; taken < count && pos < end; taken++) {
+        PyObject *obj = NULL;
+        result = scan_any(self, data, pos, end, &obj);
+        if (result == PY_FAILED) {
+            failed = 1;
+            break;
+        }
+        if (result < 0) {
+            break;
+        }
+        if (result - pos > max_bytes) {
+            Py_DECREF(obj); /* the reader rejects it as too large */
+            break;
+        }
+        PyObject *at = PyLong_FromSsize_t(base + pos);
+        int appended = at != NULL && PyList_Append(records, obj) == 0 && PyList_Append(positions, at) == 0;
+        Py_DECREF(obj);
+        Py_XDECREF(at);
+        if (!appended) {
+            failed = 1;
+            break;
+        }
+        last = pos;
+        pos = result;
+    }
+    PyBuffer_Release(&view);
+    if (failed) {
+        return NULL;
+    }
+    return Py_BuildValue("(nnn)", pos, result, last);
+}
+
 static PyObject *
 Scanner_scan_value(Scanner *self, PyObject *value)
 {
@@ -551,6 +627,10 @@ static PyMethodDef Scanner_methods[] = {
     {"scan_record", (PyCFunction)(void (*)(void))Scanner_scan_record, METH_FASTCALL,
      "scan_record(data, pos) -> int: decode the record at data[pos], a tick map (into .tick) or an array of "
      "simple ticks (into .batch; .tick is None); returns the position after it, NOT_SIMPLE or INCOMPLETE."},
+    {"scan_records", (PyCFunction)(void (*)(void))Scanner_scan_records, METH_FASTCALL,
+     "scan_records(data, pos, count, max_bytes, base, records, positions) -> (pos, result, last): scan_record in "
+     "a loop, appending each record and base + its start, up to count records of at most max_bytes each; stops "
+     "where a record does not scan (result NOT_SIMPLE or INCOMPLETE) or is too large (result: its end)."},
     {"scan_value", (PyCFunction)Scanner_scan_value, METH_O,
      "scan_value(value) -> Tick | list[Tick] | None: the record when the whole value is one simple record, "
      "else None (decode it the general way)."},
@@ -592,9 +672,9 @@ PyInit__wirescan(void)
     if (ticks == NULL) {
         return NULL;
     }
-    tick_type = PyObject_GetAttrString(ticks, "Tick");
+    new_tick = PyObject_GetAttrString(ticks, "new_tick");
     Py_DECREF(ticks);
-    if (tick_type == NULL) {
+    if (new_tick == NULL) {
         return NULL;
     }
     PyObject *module = PyModule_Create(&wirescan_module);

@@ -15,4 +15,15 @@ class WireScanner:
     @property
     def batch(self) -> list[Tick] | None: ...
     def scan_record(self, data: bytes, pos: int, /) -> int: ...
+    def scan_records(
+        self,
+        data: bytes,
+        pos: int,
+        count: int,
+        max_bytes: int,
+        base: int,
+        records: list[object],
+        positions: list[int],
+        /,
+    ) -> tuple[int, int, int]: ...
     def scan_value(self, value: bytes, /) -> Tick | list[Tick] | None: ...

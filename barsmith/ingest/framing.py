@@ -244,15 +244,11 @@ class FrameReader:
             last = -1
             # Without a scanner every record takes the general path below.
             result = INCOMPLETE if scanner is not None else NOT_SIMPLE
-            # Hot loop: one scan and two appends per record.
-            while scanner is not None and pos < end and len(objects) < max_records:
-                result = scanner.scan_record(buf, pos)
-                if result < 0 or result - pos > max_bytes:
-                    break
-                objects.append(scanner.tick if scanner.batch is None else scanner.batch)
-                offsets.append(base + pos)
-                last = pos
-                pos = result
+            if scanner is not None and pos < end and len(objects) < max_records:
+                # The hot loop, in C: records of the usual shape, until one is not.
+                pos, result, last = scanner.scan_records(
+                    buf, pos, max_records - len(objects), max_bytes, base, objects, offsets
+                )
             self._pos = pos
             if last >= 0 and not self._verified:
                 self._prev_start = base + last

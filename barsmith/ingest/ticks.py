@@ -128,6 +128,27 @@ class Tick:
         return f"Tick({self.to_wire()!r})"
 
 
+def new_tick(
+    sym: str,
+    ts: int,
+    seq: int,
+    is_snapshot: bool,
+    present: int,
+    bid_px: float | None,
+    bid_qty: float | None,
+    ask_px: float | None,
+    ask_qty: float | None,
+    trade_px: float | None,
+    trade_qty: float | None,
+) -> Tick:
+    """``Tick(...)`` with every field given by position: what the record scanner calls.
+
+    Compiled, a function takes its arguments from C as they lie, where calling the class
+    packs them into a tuple and parses that against the keywords of ``__init__`` first:
+    a tenth of a replay's time went there."""
+    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)
+
+
 _MISSING: Final[Any] = object()
 _KIND_SNAPSHOT: Final = "snapshot"
 _KIND_DELTA: Final = "delta"

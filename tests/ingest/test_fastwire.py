@@ -175,3 +175,59 @@ def test_a_repeated_key_takes_the_general_path() -> None:
     twice = bytes([0x85]) + b"\xa3seq\x07" + body
     assert scanner().scan_record(twice, 0) == NOT_SIMPLE
     assert decode_tick(msgpack.unpackb(twice)).seq == 1
+
+
+def _scan_loop(
+    scan: Any, data: bytes, pos: int, count: int, max_bytes: int, base: int
+) -> tuple[list[Any], list[int], tuple[int, int, int]]:
+    """What scan_records must do, one scan_record at a time (the reader's former loop)."""
+    records: list[Any] = []
+    positions: list[int] = []
+    result, last = INCOMPLETE, -1
+    while pos < len(data) and len(records) < count:
+        result = scan.scan_record(data, pos)
+        if result < 0 or result - pos > max_bytes:
+            break
+        records.append(scan.tick if scan.batch is None else scan.batch)
+        positions.append(base + pos)
+        last, pos = pos, result
+    return records, positions, (pos, result, last)
+
+
+# Mostly records of the usual shape (the scanner takes them), some that are not.
+_usual = st.integers(1, 50).map(lambda n: tick(seq=n, bid_px=1.5 * n, bid_qty=2.0))
+
+
+@settings(max_examples=500, deadline=None)
+@given(
+    st.lists(st.one_of(_usual, st.lists(_usual, min_size=1, max_size=3), records()), max_size=8),
+    st.integers(0, 9),
+    st.integers(0, 400),
+    st.integers(0, 20),
+)
+def test_scan_records_is_the_loop_of_scan_record(recs: list[Any], count: int, max_bytes: int, cut: int) -> None:
+    data = b"".join(msgpack.packb(r) for r in recs)
+    data = data[: len(data) - cut] if cut < len(data) else data  # a record cut short, maybe
+    expected_records, expected_positions, expected = _scan_loop(scanner(), data, 0, count, max_bytes, 1_000)
+    records_out: list[Any] = []
+    positions_out: list[int] = []
+    got = scanner().scan_records(data, 0, count, max_bytes, 1_000, records_out, positions_out)
+    assert got == expected and positions_out == expected_positions
+    flat = [r if isinstance(r, list) else [r] for r in records_out]
+    flat_expected = [r if isinstance(r, list) else [r] for r in expected_records]
+    for mine, theirs in zip(flat, flat_expected, strict=True):
+        assert len(mine) == len(theirs)
+        for a, b in zip(mine, theirs, strict=True):
+            assert all(same(getattr(a, f), getattr(b, f)) for f in Tick_fields)
+
+
+def test_scanned_ticks_are_left_out_of_the_cyclic_collector() -> None:
+    # A tick holds only a str, ints, floats, a bool and Nones: it cannot be in a cycle.
+    import gc
+
+    data = msgpack.packb(tick(bid_px=1.5, bid_qty=2.0))
+    scan = scanner()
+    assert scan.scan_record(data, 0) == len(data)
+    assert scan.tick is not None and not gc.is_tracked(scan.tick)
+    batch = scan.scan_value(msgpack.packb([msgpack.unpackb(data)] * 2))
+    assert isinstance(batch, list) and not any(gc.is_tracked(t) for t in batch)
