@@ -210,11 +210,15 @@ class Engine:
         ``positions[i]`` locates ``records[i]`` for the rejects file."""
         if len(records) != len(positions):
             raise ValueError("records and positions differ in length")
+        # Compiled, indexing a list is a direct read; a Sequence goes through the
+        # generic item protocol twice per record. Sources hand over lists.
+        record_list: list[Any] = records if type(records) is list else list(records)
+        position_list: list[int] = positions if type(positions) is list else list(positions)
         # Direct self._on_record calls: compiled, they are native calls (a cached
         # bound method would go through the generic Python call path).
-        for i in range(len(records)):
-            record = records[i]
-            position = positions[i]
+        for i in range(len(record_list)):
+            record = record_list[i]
+            position = position_list[i]
             if type(record) is list:
                 for item in record:
                     self._on_record(item, position, source)

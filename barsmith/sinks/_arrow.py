@@ -43,19 +43,20 @@ def column_array(values: Sequence[Any], arrow_type: pa.DataType) -> pa.Array:
 
 def _validity(values: Sequence[Any]) -> tuple[pa.Buffer | None, int]:
     """The validity bitmap (None when no value is null) and the null count."""
-    nulls = sum(1 for v in values if v is None)
-    if not nulls:
-        return None, 0
-    return _bits([v is not None for v in values]), nulls
+    digits = "".join(["0" if v is None else "1" for v in reversed(values)])
+    nulls = digits.count("0")
+    return (_packed(digits, len(values)) if nulls else None), nulls
 
 
 def _bits(flags: Sequence[Any]) -> pa.Buffer:
     """Truthy values as a bitmap, least significant bit first (Arrow's bit order)."""
-    out = bytearray((len(flags) + 7) // 8)
-    for index, flag in enumerate(flags):
-        if flag:
-            out[index >> 3] |= 1 << (index & 7)
-    return pa.py_buffer(out)
+    return _packed("".join(["1" if flag else "0" for flag in reversed(flags)]), len(flags))
+
+
+def _packed(digits: str, length: int) -> pa.Buffer:
+    # The last value's digit first: as one binary number, value i is bit i, and its
+    # little-endian bytes are the bitmap. (Faster than setting bits one at a time.)
+    return pa.py_buffer(int(digits or "0", 2).to_bytes((length + 7) // 8, "little"))
 
 
 def _variable_width(values: Sequence[Any], arrow_type: pa.DataType, validity: pa.Buffer | None, nulls: int) -> pa.Array:
