@@ -280,7 +280,9 @@ def _add_config(commands: argparse._SubParsersAction[_Parser]) -> None:
 
 
 def _add_bench(commands: argparse._SubParsersAction[_Parser]) -> None:
-    bench = commands.add_parser("bench", help="measure replay throughput against msgpack decoding")
+    bench = commands.add_parser(
+        "bench", help="measure start-up, replay against msgpack decoding and, with --bootstrap, the service"
+    )
     bench.add_argument(
         "--ticks", type=_positive_int, default=2_000_000, metavar="N", help="ticks to generate (default 2000000)"
     )
@@ -292,7 +294,7 @@ def _add_bench(commands: argparse._SubParsersAction[_Parser]) -> None:
         help="invented listings, 1 to 24 (default 20; the bus benchmark always uses 20)",
     )
     bench.add_argument("--seed", type=int, default=11, metavar="N", help="seed of the generated feed (default 11)")
-    bench.add_argument("--bootstrap", metavar="HOST:PORT", help="benchmark the service through this broker instead")
+    bench.add_argument("--bootstrap", metavar="HOST:PORT", help="also benchmark the service through this broker")
     bench.set_defaults(handler=_cmd_bench)
 
 
@@ -517,19 +519,18 @@ def _cmd_columns(args: argparse.Namespace) -> int:
 
 
 def _cmd_bench(args: argparse.Namespace) -> int:
+    from barsmith.tools.bench import run_bench
+    from barsmith.tools.synth import MAX_SYMBOLS
+
+    if args.symbols > MAX_SYMBOLS:
+        raise ConfigError(f"--symbols: at most {MAX_SYMBOLS} (the generator's invented listings)")
+    for line in run_bench(args.ticks, args.symbols, args.seed):
+        print(line, flush=True)
     if args.bootstrap:
         from barsmith.tools.bench_bus import run_bus_bench
 
-        lines = run_bus_bench(args.bootstrap, args.ticks, args.seed)
-    else:
-        from barsmith.tools.bench import run_bench
-        from barsmith.tools.synth import MAX_SYMBOLS
-
-        if args.symbols > MAX_SYMBOLS:
-            raise ConfigError(f"--symbols: at most {MAX_SYMBOLS} (the generator's invented listings)")
-        lines = run_bench(args.ticks, args.symbols, args.seed)
-    for line in lines:
-        print(line)
+        for line in run_bus_bench(args.bootstrap, args.ticks, args.seed):
+            print(line, flush=True)
     return EXIT_OK
 
 
