@@ -148,4 +148,5 @@ def replay_files(
         limits=plan.limits,
         revision_window_ns=plan.revision_window_ns,
     )
-    return runner.run()
+    # Files and Parquet never wait on I/O: no event loop to import and start.
+    return runner.run(event_loop=False)

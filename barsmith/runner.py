@@ -11,13 +11,15 @@ its files are drained; a live source ends when asked to stop.
 
 from __future__ import annotations
 
-import asyncio
 import contextlib
 import gc
 import signal
+import sys
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Coroutine, Sequence
 from dataclasses import dataclass, field
+from types import FrameType
+from typing import Any, TypeVar
 
 from barsmith.bars.spec import BarSpec
 from barsmith.engine import Engine, EngineStats
@@ -26,6 +28,7 @@ from barsmith.sinks.base import BarSink, RejectSink
 from barsmith.sources.base import RecordBatch, Source
 
 GC_YOUNG_THRESHOLD = 200_000
+_T = TypeVar("_T")
 
 
 @dataclass(slots=True)
@@ -105,9 +108,18 @@ class Runner:
 
     # -- lifecycle -------------------------------------------------------------------
 
-    def run(self) -> RunSummary:
-        """Run to the end of the source (or a signal) and return the summary."""
-        return asyncio.run(self.serve())
+    def run(self, *, event_loop: bool = True) -> RunSummary:
+        """Run to the end of the source (or a signal) and return the summary.
+
+        ``event_loop=False`` runs without asyncio, for a source and sinks that never
+        wait on I/O (replay's files and Parquet): their coroutines only pause between
+        batches, and importing and starting an event loop would be a good part of a
+        small file's whole run. One that does wait fails with ``RuntimeError``."""
+        if event_loop:
+            import asyncio
+
+            return asyncio.run(self.serve())
+        return _run_to_end(self.serve())
 
     async def serve(self) -> RunSummary:
         # The hot loop allocates millions of short-lived, acyclic objects (decoded
@@ -125,14 +137,7 @@ class Runner:
             gc.unfreeze()
 
     async def _serve(self) -> RunSummary:
-        loop = asyncio.get_running_loop()
-        installed: list[signal.Signals] = []
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            try:
-                loop.add_signal_handler(sig, self.handle_exit, sig)
-                installed.append(sig)
-            except (NotImplementedError, RuntimeError):  # not the main thread
-                pass
+        remove_handlers = self._install_signal_handlers()
         try:
             try:
                 await self.startup()
@@ -142,8 +147,34 @@ class Runner:
                 raise
             return await self.shutdown()
         finally:
+            remove_handlers()
+
+    def _install_signal_handlers(self) -> Callable[[], None]:
+        """SIGINT and SIGTERM call :meth:`handle_exit` (through the event loop when one
+        runs); returns what puts the previous handlers back."""
+        loop = _running_loop()
+        installed: list[signal.Signals] = []
+        previous: dict[signal.Signals, Any] = {}
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            try:
+                if loop is not None:
+                    loop.add_signal_handler(sig, self.handle_exit, sig)
+                    installed.append(sig)
+                else:
+                    previous[sig] = signal.signal(sig, self._on_signal)
+            except (NotImplementedError, RuntimeError, ValueError):  # not the main thread
+                pass
+
+        def remove() -> None:
             for sig in installed:
                 loop.remove_signal_handler(sig)
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+
+        return remove
+
+    def _on_signal(self, signum: int, frame: FrameType | None) -> None:
+        self.handle_exit(signal.Signals(signum))
 
     def handle_exit(self, sig: signal.Signals | None = None) -> None:
         """Signal handler: the first call asks for a clean stop, a second forces it."""
@@ -236,3 +267,28 @@ class Runner:
         for engine in self.engines.values():
             total.add(engine.stats)
         return total
+
+
+def _running_loop() -> Any:
+    """The running asyncio event loop, or None (a running loop means asyncio is imported)."""
+    asyncio = sys.modules.get("asyncio")
+    if asyncio is None:
+        return None
+    try:
+        return asyncio.get_running_loop()
+    except RuntimeError:
+        return None
+
+
+def _run_to_end(coroutine: Coroutine[Any, Any, _T]) -> _T:
+    """Run ``coroutine`` without an event loop: it may only pause (bare yields, as
+    :func:`barsmith.sources.base.pause` and ``asyncio.sleep(0)`` do), never wait."""
+    while True:
+        try:
+            waited = coroutine.send(None)
+        except StopIteration as done:
+            result: _T = done.value
+            return result
+        if waited is not None:
+            coroutine.close()
+            raise RuntimeError(f"a run without an event loop waited on {waited!r}; use run(event_loop=True)")

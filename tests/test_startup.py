@@ -81,6 +81,7 @@ def test_replay_of_a_tiny_file_to_parquet_loads_only_what_it_runs(tmp_path: Path
     loaded = _modules_after(code)
     assert "pyarrow" in loaded  # it does write Parquet
     assert not loaded & (_KAFKA_AND_METRICS | _SETTINGS_LIBRARY | {"pandas"})
+    assert "asyncio" not in loaded  # files and Parquet run without an event loop
     assert len(pd.read_parquet(out)) == 1
 
 

@@ -3,13 +3,24 @@ the live kind whose partitions come and go with a consumer group."""
 
 from __future__ import annotations
 
-import asyncio
 import time
-from collections.abc import AsyncIterator, Mapping
+import types
+from collections.abc import AsyncIterator, Generator, Mapping
 from dataclasses import dataclass, field
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 from barsmith.ingest.rejects import Reject
+
+if TYPE_CHECKING:
+    import asyncio
+
+
+@types.coroutine
+def pause() -> Generator[None, None, None]:
+    """Let the run loop look at signals and housekeeping between two batches: what
+    ``asyncio.sleep(0)`` does (one bare yield), without needing asyncio -- so a
+    replay can run without an event loop (see :meth:`barsmith.runner.Runner.run`)."""
+    yield
 
 
 @dataclass(slots=True)

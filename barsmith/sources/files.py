@@ -3,7 +3,6 @@ gzip-compressed), read in the order given as one stream."""
 
 from __future__ import annotations
 
-import asyncio
 import gzip
 import os
 import zlib
@@ -11,12 +10,11 @@ from collections.abc import AsyncIterator, Sequence
 from pathlib import Path
 from typing import IO, Any, Final, cast
 
-from barsmith.bus.topics import partition_for, symbol_of
 from barsmith.errors import ConfigError, InputError
 from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, FrameReader, FramingReject
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason
-from barsmith.sources.base import RecordBatch
+from barsmith.sources.base import RecordBatch, pause
 
 GZIP_MAGIC: Final = b"\x1f\x8b"
 # Small batches keep freshly decoded records in cache while the engine uses them.
@@ -112,11 +110,14 @@ class FileSource:
                             for batch in self._split(source, records, positions, rejects):
                                 yield batch
                     # Let signal handlers and housekeeping run between batches.
-                    await asyncio.sleep(0)
+                    await pause()
             finished_bytes += path.stat().st_size
             self._done_bytes = finished_bytes
 
     def _split(self, source: str, records: list[Any], positions: list[int], rejects: list[Reject]) -> list[RecordBatch]:
+        # Here, not at the top: a replay of one stream never talks to the bus room.
+        from barsmith.bus.topics import partition_for, symbol_of
+
         by_partition: dict[int, RecordBatch] = {}
         for record, position in zip(records, positions, strict=True):
             # A batched record is split per tick, as the publisher sends ticks.
