@@ -399,3 +399,44 @@ async def test_exactly_once_crashes_with_revisions_in_flight_lose_and_double_not
         expected += engine.take_bars()
     assert any(bar.get("revision", 0) > 0 for bar in expected), "the feed has no straggler inside the window"
     assert rows(bus.sink.bars) == rows(expected)
+
+
+async def test_a_commit_in_flight_overlaps_processing_and_its_failure_rewinds(
+    feed: list[list[Any]], caplog: pytest.LogCaptureFixture
+) -> None:
+    """A commit's round trips run beside the loop: while one partition's commit is held
+    open, its next batches are processed, their bars wait in the engine (no second
+    transaction, nothing visible), and then the commit fails: the partition rewinds to
+    its last committed checkpoint and the output is still exactly the uninterrupted one."""
+    caplog.set_level(logging.INFO)
+    bus = memory_bus([[] for _ in feed])
+    stream = bus.topic.stream(3)  # the partition with the most input
+    gate = asyncio.Event()
+    held: list[int] = []
+
+    async def hold(committing: str) -> None:
+        if committing == stream and stream in bus.checkpoints.checkpoints and not held:
+            held.append(runner.partitions.engines[stream].stats.records)
+            await gate.wait()
+            raise KafkaTimeoutError()
+
+    bus.checkpoints.before_commit = hold
+    runner = exactly_once(bus, exit_when_idle_s=0.6)
+    feeder = asyncio.create_task(trickle(bus.topic, feed))
+    task = asyncio.create_task(runner.serve())
+    await until(lambda: bool(held), task, "no commit of the partition was held")
+    sent = len(bus.sink._for(stream)[0])  # the partition's bars inside its transaction
+    commits = len(bus.checkpoints.commits)
+    engine = runner.partitions.engines[stream]
+    await until(lambda: engine.stats.records > held[0] + 200, task, "processing stalled during the commit")
+    others = lambda: [s for s, _ in bus.checkpoints.commits[commits:]]  # noqa: E731
+    await until(lambda: bool(others()), task, "the other partitions' commits waited too")
+    # The loop went on; the partition's bars waited (none sent, no second commit).
+    assert len(bus.sink._for(stream)[0]) == sent and stream not in others()
+    gate.set()
+    await asyncio.wait_for(feeder, timeout=30)
+    await asyncio.wait_for(task, timeout=30)
+    assert rows(bus.sink.bars) == expected_bars(feed)
+    assert sample(runner, "barsmith_transactions_total", outcome="aborted") == 1
+    assert sample(runner, "barsmith_checkpoint_restores_total", reason="rewind") == 1
+    assert f"{stream}: live -> failed: transaction failed (KafkaTimeoutError" in caplog.text
