@@ -18,7 +18,9 @@ continuing from it would silently mix two definitions.
 
 Versions: 1, the first (top-of-book bars with the ``core`` and ``spread`` columns,
 positional); 2, every part serializing itself, the bar layouts, the event-time
-guard, carried bars by spec with their column names.
+guard, carried bars by spec with their column names. A spec written with a family
+keyword barsmith has since renamed (``ticks:`` → ``trades:``, same rule) is read as the
+new spelling, so that a service whose settings were updated continues its checkpoint.
 """
 
 from __future__ import annotations
@@ -29,7 +31,7 @@ from typing import Any, Final
 import msgpack
 
 from barsmith.bars.family import NEVER
-from barsmith.bars.spec import BAR_COLUMNS, DEFAULT_GROUPS, BarSpec
+from barsmith.bars.spec import BAR_COLUMNS, DEFAULT_GROUPS, RENAMED, BarSpec
 from barsmith.engine import Engine
 from barsmith.errors import CheckpointError, describe_error
 from barsmith.ingest.eventtime import UNCONFIRMED, StreamLimits
@@ -85,6 +87,7 @@ def decode_checkpoint(
             f"{sorted(READABLE_VERSIONS)}); {advice} (a new consumer group and state topic rebuild all state "
             "from the input)"
         )
+    _respell(payload)
     written_specs = list(payload.get("specs", []))
     written_layouts = payload.get("layouts") or [[text, list(DEFAULT_GROUPS)] for text in written_specs]
     wanted_specs = [spec.text for spec in specs]
@@ -110,6 +113,49 @@ def decode_checkpoint(
     return engine, meta
 
 
+def _respelled(text: str) -> str:
+    """A spec text with a renamed family keyword written the new way."""
+    keyword, sep, rest = text.partition(":")
+    renamed = RENAMED.get(keyword.strip().lower())
+    return f"{renamed[0]}{sep}{rest}" if sep and renamed is not None else text
+
+
+def _respell(payload: dict[str, Any]) -> None:
+    """Rewrite, in place, every spec text of the payload that uses a renamed family
+    keyword: the specs and layouts, the engine's per-spec counters, and the spec of the
+    bars a sink carries (their ``spec`` column included)."""
+    texts = [str(text) for text in payload.get("specs", [])]
+    new = {text: _respelled(text) for text in texts}
+    if all(old == now for old, now in new.items()):
+        return
+    payload["specs"] = [new[text] for text in texts]
+    if payload.get("layouts"):
+        payload["layouts"] = [[new.get(str(text), text), groups] for text, groups in payload["layouts"]]
+    engine = payload.get("engine")
+    if isinstance(engine, dict):
+        if isinstance(engine.get("stats"), list):
+            engine["stats"] = [
+                {new.get(k, k): v for k, v in part.items()} if isinstance(part, dict) and i >= 7 else part
+                for i, part in enumerate(engine["stats"])
+            ]
+        for item in engine.get("bars", []):
+            if isinstance(item, dict) and "spec_text" in item:  # version 1
+                item["spec_text"] = new.get(str(item["spec_text"]), item["spec_text"])
+    for state in payload.get("meta", {}).get("sinks", {}).values():
+        if not isinstance(state, dict):
+            continue
+        if isinstance(state.get("columns"), dict):
+            state["columns"] = {new.get(k, k): v for k, v in state["columns"].items()}
+        for row in state.get("bars", []) if isinstance(state.get("bars"), list) else []:
+            if not isinstance(row, list) or len(row) < 2:
+                continue
+            if len(row) == 2 and isinstance(row[1], list):  # [spec, values]
+                row[0] = new.get(row[0], row[0])
+                row = row[1]
+            if len(row) > 1 and row[1] in new:
+                row[1] = new[row[1]]  # the bar's spec column (second, in every version)
+
+
 def _layouts(specs: Sequence[BarSpec]) -> list[list[Any]]:
     return [[spec.text, list(spec.groups)] for spec in specs]
 
@@ -132,7 +178,7 @@ def _upgrade_from_1(payload: dict[str, Any], specs: Sequence[BarSpec], limits: S
         index = index_of[str(item["spec_text"])]
         spec = specs[index]
         seal_at = int(item["end"]) if spec.is_time else NEVER
-        progress = {"ticks": float(item["trades"]), "volume": item["volume"], "notional": item["notional"]}
+        progress = {"trades": float(item["trades"]), "volume": item["volume"], "notional": item["notional"]}
         closed = item.get("closed_book") or [None, None, None]
         core = [item[name] for name in ("open", "high", "low", "close", "volume", "notional", "trades")]
         spread = [item["spread_area"], item["spread_time"], item["spread_min"], item["spread_max"], item["open_spread"]]

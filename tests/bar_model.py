@@ -245,7 +245,7 @@ def event_bars(run: ModelRun, spec: str, kind: str, size: float) -> dict[str, li
                 continue
             inside = timeline[first : i + 1]
             cols = _trade_columns(inside)
-            reached = cols["trades"] >= size if kind == "ticks" else cols[kind] >= size * (1.0 - RTOL)
+            reached = cols["trades"] >= size if kind == "trades" else cols[kind] >= size * (1.0 - RTOL)
             if reached:
                 bars.append(_event_row(sym, spec, timeline, first, i, msg.ts, True))
                 first = None

@@ -74,7 +74,7 @@ def free_port_pair() -> int:
 
 
 FEED_SYMBOLS = ["FENWORTH.KMX", "MARROWAY.KMX"]
-FEED_SPECS = ("time:1s", "time:1m", "ticks:3", "volume:25", "notional:1000")
+FEED_SPECS = ("time:1s", "time:1m", "trades:3", "volume:25", "notional:1000")
 
 
 @st.composite

@@ -16,6 +16,7 @@ from hypothesis import strategies as st
 from barsmith.bars.spec import parse_specs
 from barsmith.checkpoint import FORMAT_VERSION, CheckpointError, decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine
+from barsmith.errors import BarSpecError
 
 SPEC_LIST = parse_specs(list(SPECS))
 
@@ -104,7 +105,7 @@ def test_pending_output_must_be_taken_first() -> None:
         encode_checkpoint(engine)
 
 
-V1_SPECS = parse_specs(["time:1m", "volume:7", "ticks:4"])
+V1_SPECS = parse_specs(["time:1m", "volume:7", "trades:4"])
 V1_CHECKPOINT = Path(__file__).parent / "data" / "checkpoint-v1.msgpack"
 V1_CUT = 61
 
@@ -157,4 +158,26 @@ async def test_a_version_1_checkpoint_is_upgraded_and_continues_the_stream(tmp_p
 
 def test_a_version_1_checkpoint_with_other_groups_is_refused() -> None:
     with pytest.raises(CheckpointError, match="restore the old settings"):
-        decode_checkpoint(V1_CHECKPOINT.read_bytes(), parse_specs(["time:1m@core", "volume:7", "ticks:4"]), 2 * S)
+        decode_checkpoint(V1_CHECKPOINT.read_bytes(), parse_specs(["time:1m@core", "volume:7", "trades:4"]), 2 * S)
+
+
+def test_a_checkpoint_written_with_the_old_ticks_spelling_continues_under_trades() -> None:
+    """``ticks:N`` was renamed ``trades:N`` (same rule): a checkpoint written before the
+    rename, by a service whose settings now say ``trades:N``, continues; its per-spec
+    counters follow the new spelling. (The version-1 file above holds ``ticks:4`` too.)"""
+    recs = v1_feed()
+    engine = Engine(V1_SPECS, 2 * S)
+    run(recs[:V1_CUT], engine)
+    payload = msgpack.unpackb(encode_checkpoint(engine), raw=False, strict_map_key=False)
+    old = {"trades:4": "ticks:4"}
+    payload["specs"] = [old.get(t, t) for t in payload["specs"]]
+    payload["layouts"] = [[old.get(t, t), g] for t, g in payload["layouts"]]
+    payload["engine"]["stats"][7] = {old.get(k, k): v for k, v in payload["engine"]["stats"][7].items()}
+    assert "ticks:4" in payload["engine"]["stats"][7]
+    restored, _ = decode_checkpoint(msgpack.packb(payload), V1_SPECS, 2 * S)
+    assert restored.stats == engine.stats and "trades:4" in restored.stats.bars
+
+
+def test_the_ticks_spelling_is_refused_with_the_new_one() -> None:
+    with pytest.raises(BarSpecError, match=r"'ticks:4@core'.*now trades:.*write trades:4@core"):
+        parse_specs(["ticks:4@core"])

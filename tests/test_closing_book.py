@@ -136,7 +136,7 @@ def test_an_event_bar_closes_with_the_book_after_its_closing_message() -> None:
         trade(SYM, T0 + 3 * S, 3, 10.5, 1.0, ask_px=None),
         tick(SYM, T0 + 4 * S, 9, ask_px=10.75),  # a gap after the bar: not inside it
     ]
-    bars, _ = run_engine(recs, specs=("ticks:2",), lateness_ns=0)
+    bars, _ = run_engine(recs, specs=("trades:2",), lateness_ns=0)
     (bar,) = bars
     assert (bar.bid_close, bar.ask_close, bar.spread_close) == (10.0, None, None)
     assert (bar.start, bar.end, bar.messages, bar.gaps, bar.complete) == (T0 + S, T0 + 3 * S, 2, 0, True)
@@ -153,7 +153,7 @@ def test_an_event_bar_whose_window_is_all_undefined_has_no_spread_statistics() -
         trade(SYM, T0 + 3 * S, 6, 10.5, 1.0),
         trade(SYM, T0 + 3 * S, 7, 10.5, 1.0),
     ]
-    bars, _ = run_engine(recs, specs=("ticks:2",), lateness_ns=0)
+    bars, _ = run_engine(recs, specs=("trades:2",), lateness_ns=0)
     assert [(b.spread_mean, b.spread_min, b.spread_max, b.complete) for b in bars] == [
         (None, None, None, True),
         (None, None, None, False),  # zero-length window: the spread at its first trade (undefined)
@@ -169,7 +169,7 @@ def test_an_incomplete_event_bar_integrates_up_to_the_last_event_time() -> None:
         tick(SYM, T0 + 2 * S, 3, ask_px=11.0),  # spread 1.0 from 2 s
         trade(OTHER, T0 + 5 * S, 1, 7.0, 1.0),  # the stream's clock reaches 5 s
     ]
-    bars, _ = run_engine(recs, specs=("ticks:2",), lateness_ns=0)
+    bars, _ = run_engine(recs, specs=("trades:2",), lateness_ns=0)
     (bar,) = [b for b in bars if b.symbol == SYM]
     assert (bar.start, bar.end, bar.complete, bar.messages) == (T0 + S, T0 + S, False, 2)
     # 0.5 over [1 s, 2 s), 1.0 over [2 s, 5 s): (0.5 + 3.0) / 4.

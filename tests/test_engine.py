@@ -48,8 +48,8 @@ def test_quote_and_trade_in_one_message_trade_happens_first() -> None:
         snap(SYM, T0, 1, **quotes(10.0, 10.5)),
         trade(SYM, T0 + 30 * S, 2, 10.5, 5.0, ask_px=10.75),
     ]
-    bars, _ = run_engine(recs, specs=("time:1m", "ticks:1"))
-    tick_bar = next(b for b in bars if b.spec == "ticks:1")
+    bars, _ = run_engine(recs, specs=("time:1m", "trades:1"))
+    tick_bar = next(b for b in bars if b.spec == "trades:1")
     # Spread in effect at the trade was 0.5 (before the quote change); the bar's
     # close state is after the message's quote change.
     assert tick_bar.spread_mean == 0.5
@@ -148,7 +148,7 @@ def test_late_message_is_recorded_and_still_updates_book_and_event_bars() -> Non
     ("spec", "trades", "expected"),
     [
         # Tick bars: every N trades (López de Prado 2018, ch. 2.3.1.2, from memory).
-        ("ticks:2", [(10, 1), (11, 1), (12, 1), (13, 1), (14, 1)], [(2, 2.0, True), (2, 2.0, True), (1, 1.0, False)]),
+        ("trades:2", [(10, 1), (11, 1), (12, 1), (13, 1), (14, 1)], [(2, 2.0, True), (2, 2.0, True), (1, 1.0, False)]),
         # Volume bars: close at the first trade at which sum(qty) reaches Q; the whole
         # trade belongs to the bar, no splitting (ch. 2.3.1.3, from memory).
         ("volume:5", [(10, 2), (10, 2), (10, 3), (10, 5), (10, 1)], [(3, 7.0, True), (1, 5.0, True), (1, 1.0, False)]),
@@ -174,7 +174,7 @@ def test_event_bar_messages_span_first_to_closing_trade() -> None:
         tick(SYM, T0 + 2 * S, 3, bid_qty=2.0),
         trade(SYM, T0 + 3 * S, 4, 10.0, 1.0),
     ]
-    (bar,) = run_engine(recs, specs=("ticks:2",))[0]
+    (bar,) = run_engine(recs, specs=("trades:2",))[0]
     assert bar.messages == 3 and bar.start == T0 + S and bar.end == T0 + 3 * S
 
 

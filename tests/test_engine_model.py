@@ -36,7 +36,7 @@ from barsmith.sinks.base import MemorySink
 from barsmith.sources.files import FileSource
 
 SYMS = ["FENWORTH.KMX", "MARROWAY.KMX", "QUILLFERN.KMX"]
-SPEC_TEXTS = ["time:1s", "time:3s", "ticks:2", "volume:5", "notional:120"]
+SPEC_TEXTS = ["time:1s", "time:3s", "trades:2", "volume:5", "notional:120"]
 SPECS = parse_specs(SPEC_TEXTS)
 MODEL_SPECS = [
     (spec.text, spec.kind.value, float(spec.interval_ns) if spec.is_time else spec.threshold) for spec in SPECS

@@ -62,7 +62,7 @@ def test_split_feed_gives_the_same_bars_as_one_file(tmp_path: Path) -> None:
 
     part1.write_bytes(gzip.compress(b"".join(records[:7_777])))
     part2.write_bytes(b"".join(records[7_777:]))
-    specs = ["--bars", "time:1m", "--bars", "ticks:50", "--bars", "notional:1e5"]
+    specs = ["--bars", "time:1m", "--bars", "trades:50", "--bars", "notional:1e5"]
     assert replay(str(whole), *specs, "--out", str(tmp_path / "a")) == 0
     assert replay(str(part1), str(part2), *specs, "--out", str(tmp_path / "b")) == 0
     assert replay(str(whole), *specs, "--out", str(tmp_path / "c")) == 0
@@ -76,7 +76,7 @@ def test_truncated_file_is_reported_and_valid_records_kept(feed_file: FeedFactor
     data = b"".join(msgpack.packb(r) for r in records)
     path = tmp_path / "cut.msgpack"
     path.write_bytes(data[:-3])
-    assert replay(str(path), "--bars", "ticks:100", "--out", str(tmp_path / "o")) == 0
+    assert replay(str(path), "--bars", "trades:100", "--out", str(tmp_path / "o")) == 0
     bars = pd.read_parquet(tmp_path / "o")
     assert bars["trades"].sum() == 4
     rejects = pd.read_parquet(tmp_path / "o" / "_rejects.parquet")
@@ -88,7 +88,7 @@ def test_truncated_file_is_reported_and_valid_records_kept(feed_file: FeedFactor
     [
         (["--bars", "time:1x"], "bad bar spec 'time:1x'"),
         (["--bars", "range:5"], "bad bar spec 'range:5'"),
-        (["--bars", "ticks:0"], "bad bar spec 'ticks:0'"),
+        (["--bars", "trades:0"], "bad bar spec 'trades:0'"),
         (["--bars", "volume:-3"], "bad bar spec 'volume:-3'"),
     ],
 )

@@ -2,7 +2,7 @@
 (what a bar carries) and the column table.
 
 Importing this package registers the built-in families (``time``, ``session``,
-``ticks``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``).
+``trades``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``).
 """
 
 from barsmith.bars import core, interval, session, spread, threshold

@@ -1,6 +1,6 @@
 """Bar specs: ``<family>:<argument>[@<group>,<group>...]``.
 
-The family keyword picks the sampling rule (``time:1m``, ``ticks:50``,
+The family keyword picks the sampling rule (``time:1m``, ``trades:50``,
 ``volume:5000``, ``notional:1e6``; see :mod:`barsmith.bars.family`); the optional
 ``@`` list names the statistic groups its bars carry (``time:1m@core`` for lean
 bars, ``volume:5000@core,spread``). Without it, a spec carries the default groups
@@ -34,12 +34,16 @@ class BarKind(enum.Enum):
 
     TIME = "time"
     SESSION = "session"
-    TICKS = "ticks"
+    TRADES = "trades"
     VOLUME = "volume"
     NOTIONAL = "notional"
 
 
 _BUILT_IN: Final = frozenset(kind.value for kind in BarKind)
+# Keywords barsmith no longer takes, with the one to write instead and why.
+RENAMED: Final = {
+    "ticks": ("trades", "it counts trades, while barsmith calls every message a tick"),
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -81,6 +85,12 @@ class BarSpec:
         kind_text, sep, arg = rule.partition(":")
         keyword = kind_text.strip().lower()
         parser = FAMILIES.get(keyword)
+        if keyword in RENAMED and parser is None:
+            new, why = RENAMED[keyword]
+            raise BarSpecError(
+                f"bad bar spec {text!r}: the {keyword}: family is now {new}: ({why}); "
+                f"write {new}:{arg.strip()}" + (f"@{group_text}" if at else "")
+            )
         if parser is None:
             raise BarSpecError(f"bad bar spec {text!r}: expected {_forms()}")
         if not sep or not arg.strip():
@@ -98,7 +108,7 @@ def _forms() -> str:
     forms = {
         "time": "time:<duration>",
         "session": "session:<duration|full>",
-        "ticks": "ticks:<N>",
+        "trades": "trades:<N>",
         "volume": "volume:<Q>",
         "notional": "notional:<X>",
     }

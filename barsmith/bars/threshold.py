@@ -1,5 +1,5 @@
 """Event families that close on the trade at which an amount reaches a threshold:
-``ticks:<N>`` (trades), ``volume:<Q>`` (Σ qty), ``notional:<X>`` (Σ px·qty).
+``trades:<N>`` (trade count), ``volume:<Q>`` (Σ qty), ``notional:<X>`` (Σ px·qty).
 
 A bar opens with a trade and closes on the first trade at which its amount reaches
 the threshold; that whole trade belongs to the bar (no splitting). Volume and notional
@@ -60,8 +60,8 @@ class NotionalFamily(ThresholdFamily):
 
 def parse_trade_count(text: str, arg: str, context: SpecContext) -> BarFamily:
     if not arg.strip().isdigit() or int(arg) <= 0:
-        raise BarSpecError(f"bad bar spec {text!r}: ticks needs a whole number of trades > 0")
-    return TradeCountFamily("ticks", float(int(arg)))
+        raise BarSpecError(f"bad bar spec {text!r}: trades needs a whole number of trades > 0")
+    return TradeCountFamily("trades", float(int(arg)))
 
 
 def _amount(keyword: str, text: str, arg: str) -> float:
@@ -78,6 +78,6 @@ def parse_notional(text: str, arg: str, context: SpecContext) -> BarFamily:
     return NotionalFamily("notional", _amount("notional", text, arg))
 
 
-register_family("ticks", parse_trade_count)
+register_family("trades", parse_trade_count)
 register_family("volume", parse_volume)
 register_family("notional", parse_notional)

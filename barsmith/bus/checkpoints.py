@@ -14,7 +14,7 @@ work with aiokafka, whose offset commits in a transaction carry no group generat
 from __future__ import annotations
 
 import asyncio
-from collections.abc import Callable, Sequence
+from collections.abc import Awaitable, Callable, Sequence
 from typing import TYPE_CHECKING, Any, Protocol
 
 from barsmith.bus.clients import bar_producer, new_consumer, start_client, stop_client
@@ -190,7 +190,9 @@ class MemoryCheckpointBus:
     ``fail_next(stream, exc)`` makes the stream's next commit raise ``exc``;
     ``fence(stream)`` plays another producer taking the stream's transactional id;
     ``after_commit``, when set, is called after every commit (a test's kill switch that
-    acts at a commit, not at whatever moment a polling test wakes up)."""
+    acts at a commit, not at whatever moment a polling test wakes up); ``before_commit``,
+    when set, is awaited at the start of every commit (a broker's round trip, as long as
+    a test likes)."""
 
     def __init__(self, group_offsets: dict[str, int] | None = None) -> None:
         self.checkpoints: dict[str, bytes] = {}
@@ -199,6 +201,7 @@ class MemoryCheckpointBus:
         self._failures: dict[str, list[BaseException]] = {}
         self._open: dict[str, _MemoryTransaction] = {}
         self.after_commit: Callable[[], None] | None = None
+        self.before_commit: Callable[[str], Awaitable[None]] | None = None
 
     async def start(self) -> None:
         return None
@@ -240,6 +243,9 @@ class _MemoryTransaction:
 
     async def commit(self, checkpoint: bytes, offset: int) -> None:
         self._check()
+        if self._bus.before_commit is not None:
+            await self._bus.before_commit(self._stream)
+            self._check()
         failures = self._bus._failures.get(self._stream)
         if failures:
             raise failures.pop(0)

@@ -13,6 +13,17 @@ shutdown), is one transaction:
     + the next input offset → the consumer group
     → commit; then the checkpointed sinks publish what they staged (Parquet parts).
 
+The commit's round trips (offsets, then the commit itself: tens of milliseconds on a
+real broker) overlap with processing: the checkpoint is taken and its bars sent under
+the runner's lock, then the commit runs as a task of its own while the partition's
+next batches are processed. Their bars wait in the engine until the commit is done and
+the next transaction has begun (a producer has one transaction at a time), and no
+second checkpoint of the partition starts meanwhile; a final checkpoint (revocation,
+shutdown) waits for the one in flight. A commit that fails in flight is handled at the
+partition's next call, under the lock, as any failed transaction: the partition
+rewinds to its last *committed* checkpoint, which the failed one never replaced, so
+the input processed meanwhile is read again.
+
 On assignment (``restoring``) the owner reads the partition's latest checkpoint,
 restores the engine and the sinks' staged state, and seeks the source to the
 checkpoint's offset (``live``). When a transaction fails (broker gone, timeout), the
@@ -61,7 +72,9 @@ class PartitionOwner:
         "checkpoint",
         "dirty",
         "epoch",
+        "failure",
         "fenced_at",
+        "inflight",
         "last_at",
         "offset",
         "partition",
@@ -87,6 +100,8 @@ class PartitionOwner:
         self.dirty = False  # something went into the open transaction since the checkpoint
         self.fenced_at = 0.0
         self.restores = 0  # how often state was (re)installed: a checkpoint in flight is then void
+        self.inflight: asyncio.Task[None] | None = None  # the commit in flight, if any
+        self.failure: BaseException | None = None  # how the commit in flight failed, to be handled
 
     @property
     def open_transaction(self) -> PartitionTransaction:
@@ -124,23 +139,37 @@ class ExactlyOnce:
 
     async def close(self) -> None:
         owners, self._owners = list(self._owners.values()), {}
+        for owner in owners:
+            if owner.inflight is not None:
+                owner.inflight.cancel()  # a commit cut short is one the broker aborts
+        await asyncio.gather(*(self._forget_inflight(owner) for owner in owners))
         await asyncio.gather(*(self._drop_transaction(owner) for owner in owners))
         await self._bus.close()
 
     def accepts(self, stream: str) -> bool:
-        """Input of ``stream`` may be processed only while it is live."""
-        return self._partitions.is_live(stream)
+        """Input of ``stream`` may be processed only while it is live (and its commit in
+        flight has not failed: the rewind reads that input again)."""
+        if not self._partitions.is_live(stream):
+            return False
+        owner = self._owners.get(stream)
+        return owner is None or owner.failure is None
 
     async def deliver(self, stream: str, engine: Engine) -> None:
-        """Bars go out inside the partition's open transaction; a bus failure rewinds it."""
+        """Bars go out inside the partition's open transaction; a bus failure rewinds it.
+        While a commit is in flight they wait in the engine for the next transaction."""
         owner = self._owner(stream)
+        if owner.inflight is not None:
+            owner.dirty = True
+            return
+        if await self._settle(owner):
+            return
         async with self._rewind_on_bus_failure(owner):
             await self._context.hand_over(stream, engine)
             owner.dirty = True
 
     async def after_batch(self, stream: str) -> None:
         owner = self._owners.get(stream)
-        if owner is None or not self._partitions.is_live(stream):
+        if owner is None or not self._partitions.is_live(stream) or await self._settle(owner):
             return
         owner.dirty = True
         engine = self._partitions.engines[stream]
@@ -185,13 +214,19 @@ class ExactlyOnce:
                     level=logging.WARNING,
                 )
                 await self._drop_transaction(owner)
+        for stream in self._partitions.in_state(LIVE):
+            await self._settle(self._owners[stream])
         recovering = self._partitions.in_state(RESTORING, FAILED)
         if recovering:
             await self._recover([self._owners[s] for s in recovering])
         interval = self._checkpoint_settings.interval_s
-        due = [s for s in self._partitions.in_state(LIVE) if now - self._owners[s].last_at >= interval]
+        due = [
+            s
+            for s in self._partitions.in_state(LIVE)
+            if now - self._owners[s].last_at >= interval and self._owners[s].inflight is None
+        ]
         # Partitions are independent (own transaction, engine, sink buffers): their
-        # transactions' round trips overlap instead of adding up.
+        # transactions' round trips overlap with each other and with processing.
         await asyncio.gather(*(self.checkpoint(stream) for stream in due))
 
     async def final_flush(self, draining: bool) -> None:
@@ -205,9 +240,19 @@ class ExactlyOnce:
         await self.close()
 
     async def checkpoint(self, stream: str, final: bool = False) -> bool:
-        """Commit ``stream``'s bars, checkpoint and offset in one transaction.
-        Returns whether it committed (False: nothing new, or it failed and rewound)."""
+        """Commit ``stream``'s bars, checkpoint and offset in one transaction: a final
+        one before returning, any other in a task of its own (see the module doc).
+        Returns whether it committed or set off to (False: nothing new, a commit already
+        in flight, or it failed and rewound)."""
         owner = self._owner(stream)
+        if owner.inflight is not None:
+            if not final:
+                return False
+            await self._forget_inflight(owner, wait=True)
+        if await self._settle(owner):
+            return False
+        if final and not self._partitions.is_live(stream):
+            return False  # the commit in flight failed: the partition rewinds or stands back
         if not self._partitions.is_live(stream):
             raise StateError(f"partition {stream} is {self._partitions.state(stream)}: only a live one checkpoints")
         engine = self._partitions.engines[stream]
@@ -223,27 +268,85 @@ class ExactlyOnce:
         await self.deliver(stream, engine)
         if owner.restores != restores or not self._partitions.is_live(stream):
             return False  # the delivery failed: the partition rewound (or waits to)
-        committed = False
+        prepared = False
         async with self._rewind_on_bus_failure(owner):
             sink_states = {sink.name: await sink.prepare(stream, offset, final) for sink in self._sinks}
-            meta = {"offset": offset, "sinks": sink_states, "epoch": owner.epoch + 1, "written_ns": time.time_ns()}
-            data = encode_checkpoint(engine, meta)
-            await owner.open_transaction.commit(data, offset)
-            committed = True
-        if not committed:
+            prepared = True
+        if not prepared:
             return False
+        meta = {"offset": offset, "sinks": sink_states, "epoch": owner.epoch + 1, "written_ns": time.time_ns()}
+        data = encode_checkpoint(engine, meta)
+        records = engine.stats.records
+        owner.dirty = False  # what comes now goes into the next checkpoint
+        if final:
+            committed = False
+            async with self._rewind_on_bus_failure(owner):
+                await self._commit(owner, data, offset, sink_states, records, started, final)
+                committed = True
+            return committed
+        owner.inflight = asyncio.create_task(self._commit_in_flight(owner, data, offset, sink_states, records, started))
+        return True
+
+    async def _commit(
+        self,
+        owner: PartitionOwner,
+        data: bytes,
+        offset: int,
+        sink_states: dict[str, Any],
+        records: int,
+        started: float,
+        final: bool,
+    ) -> None:
+        """The transaction's commit and what follows it (a bus failure propagates)."""
+        await owner.open_transaction.commit(data, offset)
         self._metrics.transactions.labels(outcome="committed").inc()
         self._metrics.checkpoint_bytes.observe(len(data))
         self._metrics.checkpoint_seconds.observe(time.perf_counter() - started)
         owner.checkpoint, owner.offset, owner.sink_states = data, offset, sink_states
         owner.epoch += 1
-        owner.records_at = engine.stats.records
-        owner.dirty = False
+        owner.records_at = records
         for sink in self._sinks:
-            await sink.committed(stream, sink_states[sink.name])
+            await sink.committed(owner.stream, sink_states[sink.name])
         if not final:
-            async with self._rewind_on_bus_failure(owner):
-                await owner.open_transaction.begin()
+            await owner.open_transaction.begin()
+
+    async def _commit_in_flight(
+        self, owner: PartitionOwner, data: bytes, offset: int, sink_states: dict[str, Any], records: int, started: float
+    ) -> None:
+        """:meth:`_commit` beside the loop: a failure is kept for the partition's next
+        call, which handles it under the lock (engines and positions change only there)."""
+        try:
+            await self._commit(owner, data, offset, sink_states, records, started, False)
+        except asyncio.CancelledError:
+            raise
+        except Exception as exc:
+            owner.failure = exc
+        finally:
+            owner.inflight = None
+
+    async def _forget_inflight(self, owner: PartitionOwner, wait: bool = False) -> None:
+        """Wait for the owner's commit in flight to end (``wait``), or for a cancelled
+        one to wind up."""
+        task = owner.inflight
+        if task is None:
+            return
+        if wait:
+            await asyncio.wait([task])
+        else:
+            with contextlib.suppress(asyncio.CancelledError):
+                await task
+
+    async def _settle(self, owner: PartitionOwner) -> bool:
+        """Handle a failure of the commit that was in flight: True when there was one
+        (the partition then rewinds, or stands back when fenced). Anything but a bus
+        failure is a bug and propagates."""
+        exc, owner.failure = owner.failure, None
+        if exc is None:
+            return False
+        if not is_bus_failure(exc):
+            raise exc
+        if self._partitions.is_live(owner.stream):
+            await self.fail(owner, exc)
         return True
 
     async def fail(self, owner: PartitionOwner, exc: BaseException) -> None:

@@ -95,7 +95,7 @@ def test_core_is_always_carried_and_first() -> None:
 
 
 def test_the_default_groups_are_a_setting() -> None:
-    settings = load_settings(bars=["time:1m", "ticks:5@core,spread"], bar_groups=["core"])
+    settings = load_settings(bars=["time:1m", "trades:5@core,spread"], bar_groups=["core"])
     assert [s.groups for s in settings.bar_specs()] == [("core",), ("core", "spread")]
 
 

@@ -14,7 +14,7 @@ from hostile import hostile_feed
 
 from barsmith.replay import replay_files
 
-SPECS = ["time:1m", "ticks:50", "volume:5000", "notional:1e6"]
+SPECS = ["time:1m", "trades:50", "volume:5000", "notional:1e6"]
 KEY = ["spec", "symbol", "start", "end"]
 
 

@@ -161,6 +161,19 @@ async def crash_when(runner: ServiceRunner, bus: Bus, records: int) -> None:
         bus.checkpoints.after_commit = None
 
 
+async def trickle(topic: MemoryTopic, feed: list[list[Any]], steps: int = 100, pause_s: float = 0.005) -> None:
+    """Publish the feed in ``steps`` slices, a share of every partition each ``pause_s``:
+    input that keeps arriving while services crash and restart, so that a kill finds
+    one mid-stream however fast it reads (a feed there whole is read in one go by a
+    compiled build, before its first checkpoint)."""
+    done = [0] * len(feed)
+    for step in range(1, steps + 1):
+        cut = [len(records) * step // steps for records in feed]
+        topic.publish([records[a:b] for records, a, b in zip(feed, done, cut, strict=True)])
+        done = cut
+        await asyncio.sleep(pause_s)
+
+
 def sample(runner: ServiceRunner, name: str, **labels: str) -> float:
     text = generate_latest(runner.metrics.registry).decode()
     for family in text_string_to_metric_families(text):
@@ -195,15 +208,18 @@ async def test_exactly_once_crashes_lose_and_double_nothing(
     """Three kills at different depths, then a run to the end: exactly the uninterrupted
     bars, each once; the restarts continue from the checkpoints, open bars included."""
     caplog.set_level(logging.INFO)
-    bus = memory_bus(feed)
+    bus = memory_bus([[] for _ in feed])
+    feeder = asyncio.create_task(trickle(bus.topic, feed))
     total = sum(map(len, feed))
     for quarter in (1, 2, 3):
-        # Killed once checkpoints cover this quarter of the input and the process did
-        # some work of its own: at any batch after that.
+        # Killed at the commit that brings checkpoints past this quarter of the input,
+        # once the process did some work of its own.
         runner = exactly_once(bus)
         await crash_when(runner, bus, quarter * total // 4)
     assert 0 < len(bus.sink.bars) < len(expected_bars(feed))
+    assert not feeder.done(), "the input was all there before the last kill"
     await asyncio.wait_for(exactly_once(bus).serve(), timeout=30)
+    assert feeder.done()
     assert rows(bus.sink.bars) == expected_bars(feed)
     assert "restoring -> live: restored from its checkpoint" in caplog.text
 
@@ -365,12 +381,15 @@ async def test_exactly_once_crashes_with_revisions_in_flight_lose_and_double_not
     the service publishes exactly the revisions of an uninterrupted run."""
     window_ms = 10 * 60_000
     parts = straggling(feed)
-    bus = memory_bus(parts)
+    bus = memory_bus([[] for _ in parts])
+    feeder = asyncio.create_task(trickle(bus.topic, parts))
     total = sum(map(len, parts))
     for third in (1, 2):
         runner = exactly_once(bus, revision_window_ms=window_ms)
         await crash_when(runner, bus, third * total // 3)
+    assert not feeder.done(), "the input was all there before the last kill"
     await asyncio.wait_for(exactly_once(bus, revision_window_ms=window_ms).serve(), timeout=30)
+    assert feeder.done()
     expected: list[Bar] = []
     for records in parts:
         specs = parse_specs(SPECS, context=SpecContext(revisions=True))
@@ -380,3 +399,44 @@ async def test_exactly_once_crashes_with_revisions_in_flight_lose_and_double_not
         expected += engine.take_bars()
     assert any(bar.get("revision", 0) > 0 for bar in expected), "the feed has no straggler inside the window"
     assert rows(bus.sink.bars) == rows(expected)
+
+
+async def test_a_commit_in_flight_overlaps_processing_and_its_failure_rewinds(
+    feed: list[list[Any]], caplog: pytest.LogCaptureFixture
+) -> None:
+    """A commit's round trips run beside the loop: while one partition's commit is held
+    open, its next batches are processed, their bars wait in the engine (no second
+    transaction, nothing visible), and then the commit fails: the partition rewinds to
+    its last committed checkpoint and the output is still exactly the uninterrupted one."""
+    caplog.set_level(logging.INFO)
+    bus = memory_bus([[] for _ in feed])
+    stream = bus.topic.stream(3)  # the partition with the most input
+    gate = asyncio.Event()
+    held: list[int] = []
+
+    async def hold(committing: str) -> None:
+        if committing == stream and stream in bus.checkpoints.checkpoints and not held:
+            held.append(runner.partitions.engines[stream].stats.records)
+            await gate.wait()
+            raise KafkaTimeoutError()
+
+    bus.checkpoints.before_commit = hold
+    runner = exactly_once(bus, exit_when_idle_s=0.6)
+    feeder = asyncio.create_task(trickle(bus.topic, feed))
+    task = asyncio.create_task(runner.serve())
+    await until(lambda: bool(held), task, "no commit of the partition was held")
+    sent = len(bus.sink._for(stream)[0])  # the partition's bars inside its transaction
+    commits = len(bus.checkpoints.commits)
+    engine = runner.partitions.engines[stream]
+    await until(lambda: engine.stats.records > held[0] + 200, task, "processing stalled during the commit")
+    others = lambda: [s for s, _ in bus.checkpoints.commits[commits:]]  # noqa: E731
+    await until(lambda: bool(others()), task, "the other partitions' commits waited too")
+    # The loop went on; the partition's bars waited (none sent, no second commit).
+    assert len(bus.sink._for(stream)[0]) == sent and stream not in others()
+    gate.set()
+    await asyncio.wait_for(feeder, timeout=30)
+    await asyncio.wait_for(task, timeout=30)
+    assert rows(bus.sink.bars) == expected_bars(feed)
+    assert sample(runner, "barsmith_transactions_total", outcome="aborted") == 1
+    assert sample(runner, "barsmith_checkpoint_restores_total", reason="rewind") == 1
+    assert f"{stream}: live -> failed: transaction failed (KafkaTimeoutError" in caplog.text
