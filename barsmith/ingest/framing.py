@@ -389,7 +389,7 @@ class FrameReader:
         if record is None:
             # Not a record that cannot hold another: no valid tick may start inside it.
             batch = _valid_batch(obj)
-            inner = self._tick_inside_batch(pos, end) if batch else self._tick_inside(pos + 1, end, None)
+            inner = self._tick_inside_batch(pos, end) if batch else self._tick_inside(pos + 1, end)
             if inner == _MORE:
                 return _MORE
             if inner >= 0:
@@ -439,7 +439,7 @@ class FrameReader:
             seen_bad = False
             try:
                 count = unpacker.read_array_header()
-                inner = self._tick_inside(at + 1, at + unpacker.tell(), None)  # the header's own bytes
+                inner = self._tick_inside(at + 1, at + unpacker.tell())  # the header's own bytes
                 if inner != _NO:
                     return (_INNER, inner, None) if inner >= 0 else (_MORE, None, None)
                 for _ in range(count):
@@ -455,7 +455,7 @@ class FrameReader:
                         if first_tick >= 0:
                             return _INNER, first_tick, None
                         seen_bad = True
-                        inner = self._tick_inside(start, at + unpacker.tell(), None)
+                        inner = self._tick_inside(start, at + unpacker.tell())
                         if inner == _MORE:
                             return _MORE, None, None
                         if inner >= 0:
@@ -549,43 +549,29 @@ class FrameReader:
         """The first position in [start, end) (other than the ``allowed`` ones) where a
         valid tick starts that runs past ``end`` and is itself a record: one with
         only wire-format keys, or one that holds no other tick's start. _NO or _MORE."""
-        buf = self._buf
-        at = start
-        while at < end:
-            found = _TICK_START.search(buf, at, end)
-            if found is None:
-                return _NO
+        for found in _TICK_START.finditer(self._buf, start, end):
             at = found.start()
-            if allowed is None or at not in allowed:
-                tick_end, clean = self._tick_at(at)
-                if tick_end == _MORE:
+            if allowed is not None and at in allowed:
+                continue
+            tick_end, clean = self._tick_at(at)
+            if tick_end == _MORE:
+                return _MORE
+            if tick_end > end:
+                if clean:
+                    return at
+                inner = self._tick_inside(at + 1, tick_end)
+                if inner == _MORE:
                     return _MORE
-                if tick_end > end:
-                    if clean:
-                        return at
-                    inner = self._tick_inside(at + 1, tick_end, None)
-                    if inner == _MORE:
-                        return _MORE
-                    if inner == _NO:
-                        return at
-            at += 1
+                if inner == _NO:
+                    return at
         return _NO
 
-    def _tick_inside(self, start: int, end: int, allowed: set[int] | None) -> int:
-        """The first position in [start, end) where a valid tick record starts (other
-        than the ``allowed`` ones); _NO or _MORE."""
-        buf = self._buf
-        at = start
-        while at < end:
-            found = _TICK_START.search(buf, at, end)
-            if found is None:
-                return _NO
-            at = found.start()
-            if allowed is None or at not in allowed:
-                tick_end = self._tick_end(at)
-                if tick_end != _NO:
-                    return at if tick_end >= 0 else _MORE
-            at += 1
+    def _tick_inside(self, start: int, end: int) -> int:
+        """The first position in [start, end) where a valid tick record starts; _NO or _MORE."""
+        for found in _TICK_START.finditer(self._buf, start, end):
+            tick_end = self._tick_end(found.start())
+            if tick_end != _NO:
+                return found.start() if tick_end >= 0 else _MORE
         return _NO
 
     def _tick_inside_batch(self, at: int, end: int) -> int:
@@ -597,14 +583,14 @@ class FrameReader:
         unpacker = new_unpacker(self._max_record)
         unpacker.feed(self._buf[at:end])
         count = unpacker.read_array_header()
-        inner = self._tick_inside(at + 1, at + unpacker.tell(), None)
+        inner = self._tick_inside(at + 1, at + unpacker.tell())
         for _ in range(count):
             if inner != _NO:
                 break
             start = at + unpacker.tell()
             item = unpacker.unpack()
             if not _WIRE_KEYS.issuperset(item):
-                inner = self._tick_inside(start + 1, at + unpacker.tell(), None)
+                inner = self._tick_inside(start + 1, at + unpacker.tell())
         return inner
 
     def _boundary_after(self, at: int) -> int:
@@ -625,7 +611,7 @@ class FrameReader:
             if kind != _VALUE:
                 break
             # A value that runs into a record is damage, not a boundary.
-            inner = self._tick_inside(at + 1, after, None)
+            inner = self._tick_inside(at + 1, after)
             if inner != _NO:
                 return _MORE if inner == _MORE else _NO
             at = after
