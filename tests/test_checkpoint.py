@@ -158,3 +158,24 @@ async def test_a_version_1_checkpoint_is_upgraded_and_continues_the_stream(tmp_p
 def test_a_version_1_checkpoint_with_other_groups_is_refused() -> None:
     with pytest.raises(CheckpointError, match="restore the old settings"):
         decode_checkpoint(V1_CHECKPOINT.read_bytes(), parse_specs(["time:1m@core", "volume:7", "ticks:4"]), 2 * S)
+
+
+V2_CHECKPOINT = Path(__file__).parent / "data" / "checkpoint-v2.msgpack"
+
+
+def test_a_version_2_checkpoint_continues_the_stream() -> None:
+    # tests/data/checkpoint-v2.msgpack: written by the version-2 encoder (barsmith before
+    # trade signing) after the first 61 records of v1_feed(), with V1_SPECS and lateness 2 s.
+    recs = v1_feed()
+    whole = Engine(V1_SPECS, 2 * S)
+    expected = run(recs, whole)
+    whole.finish()
+    expected += whole.take_bars()
+    assert msgpack.unpackb(V2_CHECKPOINT.read_bytes())["version"] == 2
+    engine, meta = decode_checkpoint(V2_CHECKPOINT.read_bytes(), V1_SPECS, 2 * S)
+    assert meta == {"offset": V1_CUT}
+    got = run(recs[V1_CUT:], engine, V1_CUT)
+    engine.finish()
+    got += engine.take_bars()
+    assert sorted(tuple(b.values) for b in got) == sorted(tuple(b.values) for b in expected[len(expected) - len(got) :])
+    assert books_of(engine) == books_of(whole) and engine.stats == whole.stats

@@ -2,9 +2,9 @@
 (what a bar carries) and the column table.
 
 Importing this package registers the built-in families (``time``, ``session``,
-``ticks``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``).
+``ticks``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``, ``signed``).
 """
 
-from barsmith.bars import core, interval, session, spread, threshold
+from barsmith.bars import core, interval, session, signed, spread, threshold
 
-__all__ = ["core", "interval", "session", "spread", "threshold"]
+__all__ = ["core", "interval", "session", "signed", "spread", "threshold"]

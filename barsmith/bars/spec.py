@@ -3,9 +3,10 @@
 The family keyword picks the sampling rule (``time:1m``, ``ticks:50``,
 ``volume:5000``, ``notional:1e6``; see :mod:`barsmith.bars.family`); the optional
 ``@`` list names the statistic groups its bars carry (``time:1m@core`` for lean
-bars, ``volume:5000@core,spread``). Without it, a spec carries the default groups
-(the ``bar_groups`` setting; ``core`` and ``spread`` unless changed). ``core`` is
-always carried. The text as written is the bars' ``spec`` column.
+bars, ``volume:5000@core,spread``; ``@all`` for every group). Without it, a spec
+carries the default groups (the ``bar_groups`` setting; ``core`` and ``spread``
+unless changed). ``core`` is always carried. The text as written is the bars'
+``spec`` column.
 """
 
 from __future__ import annotations
@@ -20,13 +21,14 @@ import barsmith.bars  # noqa: F401  (registers the built-in families and groups)
 from barsmith.bars.bar import BAR_COLUMNS, DEFAULT_COLUMNS, layout_columns
 from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, REVISION, Column
 from barsmith.bars.family import FAMILIES, FAMILY_COLUMNS, BarFamily, SpecContext
-from barsmith.bars.group import GROUPS
+from barsmith.bars.group import GROUPS, StatGroup, StatOptions
 from barsmith.bars.interval import TimeFamily
 from barsmith.bars.threshold import ThresholdFamily
 from barsmith.errors import BarSpecError
 
 DEFAULT_GROUPS: Final = ("core", "spread")
 ALWAYS: Final = "core"
+ALL: Final = "all"  # ``@all``: every registered group, in registration order
 
 
 class BarKind(enum.Enum):
@@ -56,6 +58,14 @@ class BarSpec:
     interval_ns: int = 0
     threshold: float = 0.0
     revisions: bool = False  # bars may be revised: they carry a ``revision`` column
+    # The groups themselves, configured by the ``statistics`` settings (one per name).
+    stat_groups: tuple[StatGroup, ...] = field(default=(), compare=False, repr=False)
+
+    def __post_init__(self) -> None:
+        if not self.stat_groups:
+            object.__setattr__(
+                self, "stat_groups", tuple(GROUPS[name].configured(StatOptions()) for name in self.groups)
+            )
 
     @property
     def is_time(self) -> bool:
@@ -64,7 +74,12 @@ class BarSpec:
     @property
     def columns(self) -> tuple[Column, ...]:
         """The columns of this spec's bars, in order (frame, groups, ``complete``)."""
-        return layout_columns([GROUPS[name] for name in self.groups], self.family.columns, self.revisions)
+        return layout_columns(self.stat_groups, self.family.columns, self.revisions)
+
+    @property
+    def group_labels(self) -> list[str]:
+        """The groups with their settings (``rv(1000ms)``): what a checkpoint compares."""
+        return [group.label for group in self.stat_groups]
 
     @property
     def file_stem(self) -> str:
@@ -91,7 +106,9 @@ class BarSpec:
         interval_ns = family.interval_ns if isinstance(family, TimeFamily) else 0
         threshold = family.threshold if isinstance(family, ThresholdFamily) else 0.0
         kind = BarKind(keyword) if keyword in _BUILT_IN else None
-        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions)
+        options = context.statistics if context.statistics is not None else StatOptions()
+        stat_groups = tuple(GROUPS[name].configured(options) for name in groups)
+        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions, stat_groups)
 
 
 def _forms() -> str:
@@ -110,10 +127,15 @@ def _groups(text: str, listed: str | None, default: Sequence[str]) -> tuple[str,
     names = [name.strip() for name in listed.split(",")] if listed is not None else list(default)
     if listed is not None and not any(names):
         raise BarSpecError(f"bad bar spec {text!r}: name at least one statistic group after '@'")
+    if ALL in names:
+        if len(names) > 1:
+            raise BarSpecError(f"bad bar spec {text!r}: '@all' stands alone (it names every statistic group)")
+        names = list(GROUPS)
     unknown = [name for name in names if name not in GROUPS]
     if unknown:
         raise BarSpecError(
-            f"bad bar spec {text!r}: unknown statistic group {unknown[0]!r} (known: {', '.join(sorted(GROUPS))})"
+            f"bad bar spec {text!r}: unknown statistic group {unknown[0]!r} "
+            f"(known: {', '.join(sorted(GROUPS))}, or all)"
         )
     if len(set(names)) != len(names):
         raise BarSpecError(f"bad bar spec {text!r}: a statistic group is named twice")

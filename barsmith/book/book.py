@@ -10,6 +10,14 @@ Rules (the README's "Book rules" table; tests pin every line):
   accepted, counted, ``RESYNCING`` until the next snapshot.
 * Event time per symbol never goes backwards: a ``ts`` below the last accepted one is
   raised to it (a counted *time regression*); one too far below it is refused.
+* Trades are signed (:meth:`SymbolBook.sign_trade`, only when a bar set asks for signs)
+  by the Lee--Ready rule against the quote prevailing before the message: above the
+  midpoint a buy, below it a sell, at it the tick test; with no valid quote (not live,
+  a side unset, or crossed) the tick test alone. The tick test compares with the last
+  trade price the book saw that differs from this one: up → buy, down → sell, and a
+  trade at the last price takes the direction of the last change (zero-up → buy,
+  zero-down → sell); with no earlier different price it is unsigned (0). The last
+  trade price and the last change's direction outlive bars, and checkpoints keep them.
 
 Transitions::
 
@@ -57,9 +65,11 @@ class SymbolBook:
         "bid_px",
         "bid_qty",
         "last_seq",
+        "last_trade_px",
         "last_ts",
         "status",
         "symbol",
+        "tick_dir",
         "time_regressions",
     )
 
@@ -73,6 +83,8 @@ class SymbolBook:
         self.ask_px: float | None = None
         self.ask_qty: float | None = None
         self.time_regressions = 0
+        self.last_trade_px: float | None = None  # the last trade seen by sign_trade
+        self.tick_dir = 0  # direction of the last trade price change: +1 up, -1 down, 0 none yet
 
     @property
     def is_live(self) -> bool:
@@ -83,6 +95,31 @@ class SymbolBook:
         if self.status is _LIVE and self.bid_px is not None and self.ask_px is not None:
             return self.ask_px - self.bid_px
         return None
+
+    def mid(self) -> float | None:
+        """(bid + ask) / 2 of a valid quote: live, both prices set, not crossed."""
+        if self.status is _LIVE:
+            bid = self.bid_px
+            ask = self.ask_px
+            if bid is not None and ask is not None and bid <= ask:
+                return (bid + ask) * 0.5
+        return None
+
+    def sign_trade(self, px: float) -> int:
+        """The Lee--Ready direction of a trade at ``px`` against the quote as it stands
+        (call it before the trade's message changes the book): +1 buy, -1 sell, 0 not
+        signable. Updates the tick-test state, so call it once per trade, in order."""
+        last = self.last_trade_px
+        if last is not None and px != last:
+            self.tick_dir = 1 if px > last else -1
+        self.last_trade_px = px
+        mid = self.mid()
+        if mid is not None:
+            if px > mid:
+                return 1
+            if px < mid:
+                return -1
+        return self.tick_dir  # the tick test: this trade's move, or the last move for a zero tick
 
     def admit(self, tick: Tick, max_behind_ns: int = NO_LIMIT_NS) -> Outcome:
         """Judge a message: the sequence rules, then the event-time clamp. Updates only
@@ -159,6 +196,8 @@ class SymbolBook:
             self.ask_px,
             self.ask_qty,
             self.time_regressions,
+            self.last_trade_px,
+            self.tick_dir,
         ]
 
     def restore(self, data: list[Any]) -> None:
@@ -167,3 +206,5 @@ class SymbolBook:
         self.last_seq, self.last_ts = int(data[1]), int(data[2])
         self.bid_px, self.bid_qty, self.ask_px, self.ask_qty = data[3], data[4], data[5], data[6]
         self.time_regressions = int(data[7])
+        if len(data) > 8:  # checkpoint format 3 on
+            self.last_trade_px, self.tick_dir = data[8], int(data[9])

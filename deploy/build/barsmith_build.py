@@ -23,6 +23,7 @@ HOT_MODULES = [
     "barsmith/bars/group.py",
     "barsmith/bars/core.py",
     "barsmith/bars/spread.py",
+    "barsmith/bars/signed.py",
     "barsmith/bars/family.py",
     "barsmith/bars/interval.py",
     "barsmith/bars/threshold.py",
