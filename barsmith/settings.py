@@ -39,6 +39,7 @@ from pydantic_settings import (
 
 from barsmith.bars.calendar import Calendars, load_calendars
 from barsmith.bars.family import SpecContext
+from barsmith.bars.group import StatOptions
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
@@ -199,6 +200,19 @@ class SessionSettings(BaseModel):
         return SpecContext(_load_calendars_cached(str(path), stamp), self.outside)
 
 
+class StatisticsSettings(BaseModel):
+    """Settings of statistic groups (README, "Microstructure statistics")."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    rv_sample_ms: int = Field(
+        1_000, gt=0, le=86_400_000, description="realized_var samples the mid this often from each bar's start"
+    )
+
+    def options(self) -> StatOptions:
+        return StatOptions(rv_sample_ns=self.rv_sample_ms * 1_000_000)
+
+
 class LimitsSettings(BaseModel):
     """Bounds that keep memory in check under hostile input."""
 
@@ -242,6 +256,7 @@ class Settings(BaseSettings):
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
     event_time: EventTimeSettings = Field(default_factory=EventTimeSettings)
     limits: LimitsSettings = Field(default_factory=LimitsSettings)
+    statistics: StatisticsSettings = Field(default_factory=StatisticsSettings)
 
     @field_validator("bar_groups")
     @classmethod
@@ -264,7 +279,9 @@ class Settings(BaseSettings):
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        context = dataclasses.replace(self.sessions.context(), revisions=self.revision_window_ms > 0)
+        context = dataclasses.replace(
+            self.sessions.context(), revisions=self.revision_window_ms > 0, statistics=self.statistics.options()
+        )
         return parse_specs(self.bars, self.bar_groups, context)
 
     @property

@@ -24,6 +24,7 @@ HOT_MODULES = [
     "barsmith/bars/core.py",
     "barsmith/bars/spread.py",
     "barsmith/bars/signed.py",
+    "barsmith/bars/micro.py",
     "barsmith/bars/family.py",
     "barsmith/bars/interval.py",
     "barsmith/bars/threshold.py",

@@ -80,7 +80,10 @@ def test_each_spec_writes_its_own_columns_to_parquet_and_the_bus(tmp_path: Path,
     ("text", "message"),
     [
         ("time:1m@", "name at least one statistic group"),
-        ("time:1m@depthx", "unknown statistic group 'depthx' (known: core, signed, spread, or all)"),
+        (
+            "time:1m@depthx",
+            "unknown statistic group 'depthx' (known: core, cost, depth, flow, mid, rv, signed, spread, or all)",
+        ),
         ("time:1m@spread,spread", "named twice"),
     ],
 )
