@@ -118,6 +118,9 @@ def _forms() -> str:
         "ticks": "ticks:<N>",
         "volume": "volume:<Q>",
         "notional": "notional:<X>",
+        "tick-imbalance": "tick-imbalance:<E0[T]>[,span=..][,bound=..]",
+        "volume-imbalance": "volume-imbalance:<E0[T]>[,...]",
+        "notional-imbalance": "notional-imbalance:<E0[T]>[,...]",
     }
     listed = [forms.get(keyword, f"{keyword}:<...>") for keyword in FAMILIES]
     return ", ".join(listed[:-1]) + " or " + listed[-1] + " (optionally @<groups>)"
@@ -160,7 +163,11 @@ def column_table() -> str:
     ``barsmith columns``): the frame first, then each statistic group's, ``complete``."""
     lines = ["| column | group | type | null | meaning |", "|---|---|---|---|---|"]
     rows = [("frame", c) for c in FRAME_HEAD]
-    rows += [(f"{keyword}:", c) for keyword, columns in FAMILY_COLUMNS.items() for c in columns]
+    # Families with the same columns (the imbalance families) share their rows.
+    owners: dict[tuple[Column, ...], list[str]] = {}
+    for keyword, columns in FAMILY_COLUMNS.items():
+        owners.setdefault(columns, []).append(f"{keyword}:")
+    rows += [(", ".join(keywords), c) for columns, keywords in owners.items() for c in columns]
     rows += [(group.name, c) for group in GROUPS.values() for c in group.columns]
     rows += [("revisions", REVISION)]
     rows += [("frame", c) for c in FRAME_TAIL]

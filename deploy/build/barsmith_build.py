@@ -28,6 +28,7 @@ HOT_MODULES = [
     "barsmith/bars/family.py",
     "barsmith/bars/interval.py",
     "barsmith/bars/threshold.py",
+    "barsmith/bars/imbalance.py",
     "barsmith/bars/bar.py",
     "barsmith/engine.py",
 ]
