@@ -184,6 +184,11 @@ def _add_synth(commands: argparse._SubParsersAction[_Parser]) -> None:
     synth.add_argument(
         "--malformed", type=_count, default=0, metavar="N", help="mix in N malformed records (default 0)"
     )
+    synth.add_argument(
+        "--order-flow",
+        action="store_true",
+        help="persistent trade signs, midpoint matches and price impact (default: independent sides at the touch)",
+    )
     synth.set_defaults(handler=_cmd_synth)
 
 
@@ -483,6 +488,7 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         messages=args.messages,
         duration_s=args.duration / 1000.0,
         malformed=args.malformed,
+        order_flow=args.order_flow,
     )
     size = write_feed(args.out, cfg)
     print(f"wrote {args.messages:,} messages ({size:,} bytes uncompressed) to {args.out}", file=sys.stderr)
