@@ -148,6 +148,7 @@ class Engine:
         self._max_jump_ns = self.limits.max_jump_ns
         self._max_behind_ns = self.limits.max_behind_ns
         self._max_symbols = self.limits.max_symbols
+        self._max_levels = self.limits.max_depth_levels
         # A flag, not a huge sentinel: comparing a tick's time with an int beyond the
         # compiled code's small-int range would box the time on every tick.
         self._wall_clock = False
@@ -445,6 +446,13 @@ class Engine:
                 return
             state = self._new_symbol(tick.sym)
         book = state.book
+        if tick.bids is not None or tick.asks is not None or book.depth:
+            problem = book.depth_problem(tick, self._max_levels)
+            if problem is not None:
+                too_many, detail = problem
+                reason = RejectReason.TOO_MANY_LEVELS if too_many else RejectReason.MIXED_BOOK
+                self._refuse(record, position, source, reason, detail, tick)
+                return
         regressions = book.time_regressions
         outcome = book.admit(tick, self._max_behind_ns)
         if outcome is _DUPLICATE:

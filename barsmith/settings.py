@@ -208,9 +208,12 @@ class StatisticsSettings(BaseModel):
     rv_sample_ms: int = Field(
         1_000, gt=0, le=86_400_000, description="realized_var samples the mid this often from each bar's start"
     )
+    depth_levels: int = Field(
+        5, gt=0, le=1_000, description="depth books: the depth group sums the best this many levels per side"
+    )
 
     def options(self) -> StatOptions:
-        return StatOptions(rv_sample_ns=self.rv_sample_ms * 1_000_000)
+        return StatOptions(rv_sample_ns=self.rv_sample_ms * 1_000_000, depth_levels=self.depth_levels)
 
 
 class LimitsSettings(BaseModel):
@@ -224,6 +227,9 @@ class LimitsSettings(BaseModel):
         ge=1_024,
         le=1 << 30,
         description="a record (tick map or batch) larger than this is rejected as too_large",
+    )
+    max_depth_levels: int = Field(
+        1_000, gt=0, le=1_000_000, description="price levels per side of a depth book; more: too_many_levels"
     )
 
 
@@ -307,6 +313,7 @@ class Settings(BaseSettings):
             max_held=guard.max_held_ticks,
             contradict_messages=guard.contradict_messages,
             max_symbols=self.limits.max_symbols,
+            max_depth_levels=self.limits.max_depth_levels,
         )
 
     def masked(self) -> dict[str, Any]:

@@ -89,10 +89,11 @@ class Accumulator:
 class StatOptions:
     """The settings statistic groups may read (the ``statistics`` settings)."""
 
-    def __init__(self, rv_sample_ns: int = 1_000_000_000) -> None:
-        if rv_sample_ns <= 0:
-            raise ValueError("the realized-variance sampling interval must be positive")
+    def __init__(self, rv_sample_ns: int = 1_000_000_000, depth_levels: int = 5) -> None:
+        if rv_sample_ns <= 0 or depth_levels <= 0:
+            raise ValueError("the realized-variance sampling interval and the depth levels must be positive")
         self.rv_sample_ns = rv_sample_ns
+        self.depth_levels = depth_levels
 
 
 @mypyc_attr(allow_interpreted_subclasses=True)  # an extension point: may be subclassed outside barsmith

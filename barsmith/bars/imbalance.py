@@ -44,12 +44,17 @@ DEFAULT_SPAN: Final = 10
 DEFAULT_BOUND: Final = 10.0
 
 COLUMNS: Final = (
-    Column("imbalance", "float64", False, "imbalance bars: θ = Σ b·x of the bar's trades (tick-rule signs b)"),
+    Column(
+        "imbalance",
+        "float64",
+        False,
+        "imbalance bars: θ, the sum of the bar's signed trades (b, b·qty or b·px·qty; b the tick-rule sign)",
+    ),
     Column(
         "imbalance_threshold",
         "float64",
         True,
-        "imbalance bars: E[T]·|E[x]| the bar was compared with (null: a symbol's first bar, closed on its length)",
+        "imbalance bars: E[T]·abs(E[x]) the bar was compared with (null: a symbol's first bar, closed on its length)",
     ),
 )
 

@@ -4,8 +4,10 @@ realized variance. Each is a group a bar set names (``@mid,cost``; ``@all``).
 * ``mid`` -- ``mid_open/high/low/close`` and ``microprice_close``;
 * ``cost`` -- ``rel_spread_bps_mean`` (time-weighted), ``effective_spread`` and
   ``effective_spread_bps`` (volume-weighted over the bar's trades);
-* ``depth`` -- ``bid_qty_mean``, ``ask_qty_mean``, ``depth_imbalance_mean`` (time-weighted);
+* ``depth`` -- ``bid_qty_mean``, ``ask_qty_mean``, ``depth_imbalance_mean`` (time-weighted;
+  for depth books over the best ``statistics.depth_levels`` levels);
 * ``flow`` -- ``ofi``, the order-flow imbalance of Cont, Kukanov & Stoikov (2014);
+* ``crossing`` -- ``crossed_messages``, ``locked_messages``;
 * ``rv`` -- ``realized_var``, sampled every ``statistics.rv_sample_ms``.
 
 The *mid* is (bid + ask) / 2 of a valid quote: the book live, both prices set and
@@ -68,31 +70,34 @@ class RelSpreadTracker(Tracker):
 
 
 class BidQtyTracker(Tracker):
-    def __init__(self) -> None:
-        super().__init__("bid_qty")
+    """Resting size on the bid: the best level's, or the best ``levels`` of a depth book."""
+
+    def __init__(self, levels: int) -> None:
+        super().__init__(f"bid_qty({levels})")
+        self.levels = levels
 
     def value(self, book: SymbolBook) -> float | None:
-        return book.bid_qty if book.is_live and book.bid_px is not None else None
+        return book.depth_qty(self.levels)[0]
 
 
 class AskQtyTracker(Tracker):
-    def __init__(self) -> None:
-        super().__init__("ask_qty")
+    def __init__(self, levels: int) -> None:
+        super().__init__(f"ask_qty({levels})")
+        self.levels = levels
 
     def value(self, book: SymbolBook) -> float | None:
-        return book.ask_qty if book.is_live and book.ask_px is not None else None
+        return book.depth_qty(self.levels)[1]
 
 
 class DepthImbalanceTracker(Tracker):
-    """(bid_qty - ask_qty) / (bid_qty + ask_qty): +1 all resting size on the bid."""
+    """(bid - ask) / (bid + ask) of the resting sizes above: +1 all on the bid."""
 
-    def __init__(self) -> None:
-        super().__init__("depth_imbalance")
+    def __init__(self, levels: int) -> None:
+        super().__init__(f"depth_imbalance({levels})")
+        self.levels = levels
 
     def value(self, book: SymbolBook) -> float | None:
-        if not book.is_live or book.bid_px is None or book.ask_px is None:
-            return None
-        bid_qty, ask_qty = book.bid_qty, book.ask_qty
+        bid_qty, ask_qty = book.depth_qty(self.levels)
         if bid_qty is None or ask_qty is None or bid_qty + ask_qty <= 0.0:
             return None
         return (bid_qty - ask_qty) / (bid_qty + ask_qty)
@@ -215,9 +220,9 @@ class MidGroup(StatGroup):
 COST_COLUMNS = (
     Column("rel_spread_bps_mean", "float64", True, "time-weighted mean of 10,000·(ask - bid)/mid in the window"),
     Column(
-        "effective_spread", "float64", True, "volume-weighted mean of 2·|px - mid| over trades with a prevailing mid"
+        "effective_spread", "float64", True, "volume-weighted mean of 2·abs(px - mid) over trades with a prevailing mid"
     ),
-    Column("effective_spread_bps", "float64", True, "volume-weighted mean of 10,000·2·|px - mid|/mid, same trades"),
+    Column("effective_spread_bps", "float64", True, "volume-weighted mean of 10,000·2·abs(px - mid)/mid, same trades"),
 )
 
 
@@ -278,8 +283,8 @@ class CostGroup(StatGroup):
 # -- depth ---------------------------------------------------------------------------------
 
 DEPTH_COLUMNS = (
-    Column("bid_qty_mean", "float64", True, "time-weighted mean best-bid size in the window"),
-    Column("ask_qty_mean", "float64", True, "time-weighted mean best-ask size in the window"),
+    Column("bid_qty_mean", "float64", True, "time-weighted mean bid size (depth books: best statistics.depth_levels)"),
+    Column("ask_qty_mean", "float64", True, "time-weighted mean ask size (depth books: best statistics.depth_levels)"),
     Column("depth_imbalance_mean", "float64", True, "time-weighted mean of (bid_qty - ask_qty)/(bid_qty + ask_qty)"),
 )
 
@@ -308,16 +313,21 @@ class DepthAccumulator(Accumulator):
 
 
 class DepthGroup(StatGroup):
-    def __init__(self) -> None:
+    def __init__(self, levels: int = 5) -> None:
         super().__init__(
             "depth",
             "time-weighted resting size at the best bid and ask, and their imbalance",
             DEPTH_COLUMNS,
-            (BidQtyTracker(), AskQtyTracker(), DepthImbalanceTracker()),
+            (BidQtyTracker(levels), AskQtyTracker(levels), DepthImbalanceTracker(levels)),
         )
+        self.levels = levels
+        self.label = f"depth({levels})"
 
     def accumulator(self) -> Accumulator:
         return DepthAccumulator()
+
+    def configured(self, options: StatOptions) -> StatGroup:
+        return DepthGroup(options.depth_levels)
 
 
 # -- flow ----------------------------------------------------------------------------------
@@ -379,6 +389,50 @@ class FlowGroup(StatGroup):
 
     def accumulator(self) -> Accumulator:
         return FlowAccumulator()
+
+
+# -- crossing ----------------------------------------------------------------------------
+
+CROSSING_COLUMNS = (
+    Column("crossed_messages", "int64", False, "messages of the bar after which the live book was crossed (bid > ask)"),
+    Column("locked_messages", "int64", False, "messages of the bar after which the live book was locked (bid = ask)"),
+)
+
+
+class CrossingAccumulator(Accumulator):
+    __slots__ = ("crossed", "locked")
+
+    def __init__(self) -> None:
+        self.crossed = 0
+        self.locked = 0
+
+    def quote(
+        self, bid_px: float | None, bid_qty: float | None, ask_px: float | None, ask_qty: float | None, book: SymbolBook
+    ) -> None:
+        bid, ask = book.bid_px, book.ask_px
+        if bid is not None and ask is not None and book.is_live:
+            if bid > ask:
+                self.crossed += 1
+            elif bid == ask:
+                self.locked += 1
+
+    def emit(self, row: list[Any], bar: OpenBar, empty_window: bool) -> None:
+        row.append(self.crossed)
+        row.append(self.locked)
+
+    def to_state(self) -> list[Any]:
+        return [self.crossed, self.locked]
+
+    def restore(self, data: list[Any]) -> None:
+        self.crossed, self.locked = int(data[0]), int(data[1])
+
+
+class CrossingGroup(StatGroup):
+    def __init__(self) -> None:
+        super().__init__("crossing", "crossed and locked books, counted", CROSSING_COLUMNS, on_quote=True)
+
+    def accumulator(self) -> Accumulator:
+        return CrossingAccumulator()
 
 
 # -- rv ------------------------------------------------------------------------------------
@@ -465,4 +519,5 @@ MID_GROUP = register_group(MidGroup())
 COST = register_group(CostGroup())
 DEPTH = register_group(DepthGroup())
 FLOW = register_group(FlowGroup())
+CROSSING = register_group(CrossingGroup())
 RV = register_group(RealizedVarGroup())

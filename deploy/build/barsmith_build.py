@@ -18,6 +18,7 @@ HOT_MODULES = [
     "barsmith/ingest/ticks.py",
     "barsmith/ingest/framing.py",
     "barsmith/ingest/eventtime.py",
+    "barsmith/book/depth.py",
     "barsmith/book/book.py",
     "barsmith/bars/columns.py",
     "barsmith/bars/group.py",
