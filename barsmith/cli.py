@@ -189,6 +189,13 @@ def _add_synth(commands: argparse._SubParsersAction[_Parser]) -> None:
         action="store_true",
         help="persistent trade signs, midpoint matches and price impact (default: independent sides at the touch)",
     )
+    synth.add_argument(
+        "--depth",
+        type=_count,
+        default=0,
+        metavar="N",
+        help="N depth levels per side instead of top-of-book fields (default 0: top of book)",
+    )
     synth.set_defaults(handler=_cmd_synth)
 
 
@@ -489,6 +496,7 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         duration_s=args.duration / 1000.0,
         malformed=args.malformed,
         order_flow=args.order_flow,
+        depth=args.depth,
     )
     size = write_feed(args.out, cfg)
     print(f"wrote {args.messages:,} messages ({size:,} bytes uncompressed) to {args.out}", file=sys.stderr)

@@ -15,6 +15,11 @@ not the quote), and a share of trades move the mid a tick their way (price impac
 Without it, each trade's side is an independent coin toss at the touch (the bundled
 demo feed).
 
+With ``depth`` > 0 the feed carries depth levels instead of top-of-book fields:
+``depth`` levels per side one tick apart from the touch, the touch's sizes as in the
+top-of-book feed and deeper sizes a fixed pattern of the mid; snapshots list every
+level, deltas the levels that changed (qty 0 for one that went).
+
 The same arguments always give the same bytes.
 """
 
@@ -60,6 +65,7 @@ class SynthConfig:
     sign_persistence: float = 0.8  # P(a trade is on the same side as the symbol's last one)
     midpoint_share: float = 0.1  # trades matched at the midpoint
     impact_share: float = 0.1  # trades after which the mid moves a tick their way
+    depth: int = 0  # levels per side (0: top-of-book fields)
 
 
 @dataclass(slots=True)
@@ -76,6 +82,8 @@ class _Listing:
     last_arrival_ns: int = 0
     last_message: dict[str, Any] | None = None
     last_buy: bool = True
+    sent_bids: dict[float, float] | None = None  # the depth levels last sent
+    sent_asks: dict[float, float] | None = None
 
 
 def _listings(cfg: SynthConfig, rng: random.Random) -> list[_Listing]:
@@ -192,6 +200,37 @@ def _flow_trade(listing: _Listing, msg: dict[str, Any], cfg: SynthConfig, rng: r
         msg["bid_qty"] = listing.bid_qty
 
 
+def _ladder(listing: _Listing, levels: int, bid_side: bool) -> dict[float, float]:
+    half = listing.half_spread_ticks
+    out: dict[float, float] = {}
+    for k in range(levels):
+        ticks = listing.mid_ticks - half - k if bid_side else listing.mid_ticks + half + k
+        if k == 0:
+            qty = listing.bid_qty if bid_side else listing.ask_qty
+        else:
+            qty = float(100 * (1 + (ticks * 7 + k * 13) % 30))
+        if qty > 0 and ticks > 0:
+            out[_px(listing, ticks)] = qty
+    return out
+
+
+def _to_levels(listing: _Listing, msg: dict[str, Any], levels: int) -> None:
+    """Replace the message's top-of-book fields by depth levels (see the module docstring)."""
+    for key in ("bid_px", "bid_qty", "ask_px", "ask_qty"):
+        msg.pop(key, None)
+    bids, asks = _ladder(listing, levels, True), _ladder(listing, levels, False)
+    if msg["kind"] == "snapshot" or listing.sent_bids is None or listing.sent_asks is None:
+        msg["bids"] = [[px, qty] for px, qty in sorted(bids.items(), reverse=True)]
+        msg["asks"] = [[px, qty] for px, qty in sorted(asks.items())]
+    else:
+        for key, new, old in (("bids", bids, listing.sent_bids), ("asks", asks, listing.sent_asks)):
+            changed = [[px, qty] for px, qty in new.items() if old.get(px) != qty]
+            changed += [[px, 0.0] for px in old if px not in new]
+            if changed:
+                msg[key] = changed
+    listing.sent_bids, listing.sent_asks = bids, asks
+
+
 def generate(cfg: SynthConfig) -> Iterator[dict[str, Any]]:
     """Yield ``cfg.messages`` tick maps in arrival order (valid ticks only)."""
     rng = random.Random(cfg.seed)
@@ -215,6 +254,8 @@ def generate(cfg: SynthConfig) -> Iterator[dict[str, Any]]:
         schedule(i)
         listing = listings[i]
         msg = _event(listing, ts, cfg, rng)
+        if cfg.depth:
+            _to_levels(listing, msg, cfg.depth)
         roll = rng.random()
         if roll < cfg.gap_rate and msg["kind"] == "delta":
             continue  # lost on the way: the receiver sees a sequence gap
