@@ -204,20 +204,29 @@ def _levels(key: str, value: Any, snapshot: bool) -> list[tuple[float, float]] |
     if value is _MISSING:
         return None
     if type(value) is not list:
-        raise MalformedTickError(
-            RejectReason.WRONG_TYPE, f"{key}: expected a list of [px, qty], got {type(value).__name__}"
-        )
+        got = type(value).__name__
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}: expected a list of [px, qty], got {got}")
+    items: list[Any] = value
     levels: list[tuple[float, float]] = []
-    seen: set[float] = set()
-    for i, level in enumerate(value):
+    for i in range(len(items)):
+        level = items[i]
         if type(level) is not list or len(level) != 2:
             raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}[{i}]: expected a [px, qty] pair")
-        px = _number(f"{key}[{i}] px", level[0], True)
-        qty = _number(f"{key}[{i}] qty", level[1], snapshot)  # a snapshot lists resting levels only
-        if px in seen:
-            raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: the price {px!r} is listed twice")
-        seen.add(px)
+        px = level[0]
+        qty = level[1]
+        # The usual level (two floats in range) is checked here; anything else by _number,
+        # which says what is wrong (messages are only formatted then).
+        if type(px) is not float or not 0.0 < px < math.inf:
+            px = _number(f"{key}[{i}] px", px, True)
+        if type(qty) is not float or not (0.0 < qty < math.inf or (qty == 0.0 and not snapshot)):
+            qty = _number(f"{key}[{i}] qty", qty, snapshot)  # a snapshot lists resting levels only
         levels.append((px, qty))
+    if len({px for px, _ in levels}) != len(levels):
+        seen: set[float] = set()
+        for px, _ in levels:
+            if px in seen:
+                raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: the price {px!r} is listed twice")
+            seen.add(px)
     return levels
 
 

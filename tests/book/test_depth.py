@@ -153,3 +153,15 @@ def test_depth_books_survive_checkpoints() -> None:
     second.finish()
     got += second.take_bars()
     assert got == expected
+
+
+def test_a_depth_record_is_one_clean_record_and_a_map_inside_levels_is_not() -> None:
+    from barsmith.ingest.framing import _clean_tick
+
+    good = snap(SYM, T0, 1, bids=[[10.0, 1.0]], asks=[[10.5, 2.0]])
+    assert _clean_tick(good) is not None
+    hostile = snap(SYM, T0, 1, bids=[[10.0, {"sym": SYM, "ts": T0, "seq": 2, "kind": "delta"}]])
+    assert _clean_tick(hostile) is None  # levels hold numbers only: this one is searched as a value
+    _, engine = run_engine([good, tick(SYM, T0 + S, 2, asks=[[10.5, 0.0]])], specs=("time:1m@depth",))
+    book = engine.book(SYM)
+    assert book is not None and (book.bid_px, book.ask_px, book.bid_qty) == (10.0, None, 1.0)
