@@ -42,6 +42,9 @@ REPLAY_DEFAULTS: Final[Mapping[str, Any]] = {
     "event_time.contradict_messages": 1_000,
     "limits.max_symbols": 200_000,
     "limits.max_record_bytes": 4 << 20,
+    "limits.max_depth_levels": 1_000,
+    "statistics.rv_sample_ms": 1_000,
+    "statistics.depth_levels": 5,
     "parquet.row_group_rows": 4_096,
     "parquet.max_file_rows": 5_000_000,
     "parquet.compression": "zstd",
@@ -63,6 +66,7 @@ TOP_LEVEL_SETTINGS: Final = frozenset(
         "checkpoint",
         "event_time",
         "limits",
+        "statistics",
     }
 )
 

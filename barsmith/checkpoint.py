@@ -18,9 +18,12 @@ continuing from it would silently mix two definitions.
 
 Versions: 1, the first (top-of-book bars with the ``core`` and ``spread`` columns,
 positional); 2, every part serializing itself, the bar layouts, the event-time
-guard, carried bars by spec with their column names. A spec written with a family
-keyword barsmith has since renamed (``ticks:`` → ``trades:``, same rule) is read as the
-new spelling, so that a service whose settings were updated continues its checkpoint.
+guard, carried bars by spec with their column names; 3, the books' trade-sign
+memory (last trade price, direction of its last change) and group labels with their
+settings (``rv(1000ms)``). A version-2 checkpoint reads as version 3 with no trade
+seen yet by the tick test. A spec written with a family keyword barsmith has since
+renamed (``ticks:`` → ``trades:``, same rule) is read as the new spelling, so that a
+service whose settings were updated continues its checkpoint.
 """
 
 from __future__ import annotations
@@ -37,8 +40,8 @@ from barsmith.errors import CheckpointError, describe_error
 from barsmith.ingest.eventtime import UNCONFIRMED, StreamLimits
 
 FORMAT_NAME: Final = "barsmith-engine-checkpoint"
-FORMAT_VERSION: Final = 2
-READABLE_VERSIONS: Final = frozenset({1, 2})
+FORMAT_VERSION: Final = 3
+READABLE_VERSIONS: Final = frozenset({1, 2, 3})
 
 __all__ = ["FORMAT_VERSION", "CheckpointError", "decode_checkpoint", "encode_checkpoint"]
 
@@ -157,7 +160,7 @@ def _respell(payload: dict[str, Any]) -> None:
 
 
 def _layouts(specs: Sequence[BarSpec]) -> list[list[Any]]:
-    return [[spec.text, list(spec.groups)] for spec in specs]
+    return [[spec.text, spec.group_labels] for spec in specs]
 
 
 def _describe(layouts: list[list[Any]]) -> str:

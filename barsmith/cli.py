@@ -185,6 +185,18 @@ def _add_synth(commands: argparse._SubParsersAction[_Parser]) -> None:
     synth.add_argument(
         "--malformed", type=_count, default=0, metavar="N", help="mix in N malformed records (default 0)"
     )
+    synth.add_argument(
+        "--order-flow",
+        action="store_true",
+        help="persistent trade signs, midpoint matches and price impact (default: independent sides at the touch)",
+    )
+    synth.add_argument(
+        "--depth",
+        type=_count,
+        default=0,
+        metavar="N",
+        help="N depth levels per side instead of top-of-book fields (default 0: top of book)",
+    )
     synth.set_defaults(handler=_cmd_synth)
 
 
@@ -486,6 +498,8 @@ def _cmd_synth(args: argparse.Namespace) -> int:
         messages=args.messages,
         duration_s=args.duration / 1000.0,
         malformed=args.malformed,
+        order_flow=args.order_flow,
+        depth=args.depth,
     )
     size = write_feed(args.out, cfg)
     print(f"wrote {args.messages:,} messages ({size:,} bytes uncompressed) to {args.out}", file=sys.stderr)

@@ -39,7 +39,7 @@ from typing import Any, Final
 
 from barsmith.bars.bar import BarLayout, OpenBar
 from barsmith.bars.family import DECLINE
-from barsmith.bars.group import GROUPS, Tracker
+from barsmith.bars.group import Tracker
 from barsmith.bars.record import Bar
 from barsmith.bars.spec import BarSpec
 from barsmith.book.book import Outcome, SymbolBook
@@ -148,6 +148,7 @@ class Engine:
         self._max_jump_ns = self.limits.max_jump_ns
         self._max_behind_ns = self.limits.max_behind_ns
         self._max_symbols = self.limits.max_symbols
+        self._max_levels = self.limits.max_depth_levels
         # A flag, not a huge sentinel: comparing a tick's time with an int beyond the
         # compiled code's small-int range would box the time on every tick.
         self._wall_clock = False
@@ -158,16 +159,18 @@ class Engine:
         tracker_index: dict[str, int] = {}
         self._trackers: list[Tracker] = []
         for spec in self.specs:
-            for name in spec.groups:
-                for tracker in GROUPS[name].trackers:
+            for group in spec.stat_groups:
+                for tracker in group.trackers:
                     if tracker.name not in tracker_index:
                         tracker_index[tracker.name] = len(self._trackers)
                         self._trackers.append(tracker)
         self._tracker_names = [tracker.name for tracker in self._trackers]
         self._layouts = [
-            BarLayout(spec.text, spec.family, [GROUPS[name] for name in spec.groups], tracker_index, self.revisions)
-            for spec in self.specs
+            BarLayout(spec.text, spec.family, spec.stat_groups, tracker_index, self.revisions) for spec in self.specs
         ]
+        # Trades are signed, and quote changes shown to groups, only for bar sets that ask.
+        self._signs = any(layout.signs for layout in self._layouts)
+        self._quotes = any(layout.quote_accs for layout in self._layouts)
         self._symbols: dict[str, _SymbolState] = {}
         self._watermark = 0
         self._closed_through = -1  # time bars with end <= this are closed
@@ -447,6 +450,13 @@ class Engine:
                 return
             state = self._new_symbol(tick.sym)
         book = state.book
+        if tick.bids is not None or tick.asks is not None or book.depth:
+            problem = book.depth_problem(tick, self._max_levels)
+            if problem is not None:
+                too_many, detail = problem
+                reason = RejectReason.TOO_MANY_LEVELS if too_many else RejectReason.MIXED_BOOK
+                self._refuse(record, position, source, reason, detail, tick)
+                return
         regressions = book.time_regressions
         outcome = book.admit(tick, self._max_behind_ns)
         if outcome is _DUPLICATE:
@@ -482,6 +492,9 @@ class Engine:
             px = None
         bars = state.bars
         layouts = self._layouts
+        sign = 0
+        if px is not None and self._signs:
+            sign = book.sign_trade(px)
 
         # Every spec's bar, through its family's fixed calls (no family-specific code).
         late_specs: list[str] | None = None
@@ -539,7 +552,7 @@ class Engine:
             if px is not None:
                 accs = bar.accs
                 for j in layout.trade_accs:
-                    accs[j].trade(px, qty)
+                    accs[j].trade(px, qty, sign, book)
                 if family.counts_trades and family.trade(bar, fstate, px, qty, t):
                     if closing is None:
                         closing = []
@@ -557,7 +570,10 @@ class Engine:
                 )
             )
 
-        book.apply(tick, outcome)
+        if self._quotes:
+            self._apply_watched(book, tick, outcome, bars)
+        else:
+            book.apply(tick, outcome)
         # Time-weighted quantities (the spread ...): open bars are credited only when
         # one changes, with the span the old value held.
         trackers = self._trackers
@@ -587,6 +603,22 @@ class Engine:
                 self._seal(bar, layout, state, t)
                 bars[index] = None
                 self._emit(bar, layout, True, t == bar.start, state.family_states[index])
+
+    def _apply_watched(self, book: SymbolBook, tick: Tick, outcome: Outcome, bars: list[OpenBar | None]) -> None:
+        """Apply the message to the book and show the change to the groups that follow
+        quote changes (``on_quote``), with the top of book as it was (None: undefined)."""
+        if book.is_live:
+            bid_px, bid_qty, ask_px, ask_qty = book.bid_px, book.bid_qty, book.ask_px, book.ask_qty
+        else:
+            bid_px = bid_qty = ask_px = ask_qty = None
+        book.apply(tick, outcome)
+        layouts = self._layouts
+        for index in range(len(layouts)):
+            bar = bars[index]
+            if bar is not None:
+                accs = bar.accs
+                for j in layouts[index].quote_accs:
+                    accs[j].quote(bid_px, bid_qty, ask_px, ask_qty, book)
 
     def _opened(self, bar: OpenBar, layout: BarLayout, state: _SymbolState, family_state: Any) -> None:
         """A new bar learns the tracked values in effect (before its first message)."""

@@ -10,6 +10,7 @@ from typing import TYPE_CHECKING, Any
 
 from barsmith._quick_settings import quick_replay_values
 from barsmith.bars.family import SpecContext
+from barsmith.bars.group import StatOptions
 from barsmith.bars.spec import BarSpec, parse_specs
 from barsmith.errors import BarsmithError
 from barsmith.ingest.eventtime import StreamLimits
@@ -55,7 +56,12 @@ class ReplayPlan:
     def from_defaults(cls, values: Mapping[str, Any]) -> ReplayPlan:
         """The plan of the defaults plus flags (:func:`~barsmith._quick_settings.quick_replay_values`);
         the same as :meth:`from_settings` of ``Settings`` built from them (a test checks)."""
-        context = SpecContext(None, values["sessions.outside"], revisions=values["revision_window_ms"] > 0)
+        statistics = StatOptions(
+            rv_sample_ns=values["statistics.rv_sample_ms"] * 1_000_000, depth_levels=values["statistics.depth_levels"]
+        )
+        context = SpecContext(
+            None, values["sessions.outside"], revisions=values["revision_window_ms"] > 0, statistics=statistics
+        )
         ahead = values["event_time.max_ahead_of_wall_s"]
         return cls(
             specs=tuple(parse_specs(values["bars"], values["bar_groups"], context)),
@@ -68,6 +74,7 @@ class ReplayPlan:
                 max_held=values["event_time.max_held_ticks"],
                 contradict_messages=values["event_time.contradict_messages"],
                 max_symbols=values["limits.max_symbols"],
+                max_depth_levels=values["limits.max_depth_levels"],
             ),
             max_record_bytes=values["limits.max_record_bytes"],
             row_group_rows=values["parquet.row_group_rows"],

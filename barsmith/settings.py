@@ -40,6 +40,7 @@ from pydantic_settings import (
 from barsmith._quick_settings import DEFAULT_METRICS_PORT, LATENESS_MS_MAX
 from barsmith.bars.calendar import Calendars, load_calendars
 from barsmith.bars.family import SpecContext
+from barsmith.bars.group import StatOptions
 from barsmith.bars.spec import DEFAULT_GROUPS, BarSpec, parse_specs
 from barsmith.errors import BarSpecError, ConfigError
 from barsmith.ingest.eventtime import StreamLimits
@@ -195,6 +196,22 @@ class SessionSettings(BaseModel):
         return SpecContext(_load_calendars_cached(str(path), stamp), self.outside)
 
 
+class StatisticsSettings(BaseModel):
+    """Settings of statistic groups (README, "Microstructure statistics")."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    rv_sample_ms: int = Field(
+        1_000, gt=0, le=86_400_000, description="realized_var samples the mid this often from each bar's start"
+    )
+    depth_levels: int = Field(
+        5, gt=0, le=1_000, description="depth books: the depth group sums the best this many levels per side"
+    )
+
+    def options(self) -> StatOptions:
+        return StatOptions(rv_sample_ns=self.rv_sample_ms * 1_000_000, depth_levels=self.depth_levels)
+
+
 class LimitsSettings(BaseModel):
     """Bounds that keep memory in check under hostile input."""
 
@@ -206,6 +223,9 @@ class LimitsSettings(BaseModel):
         ge=1_024,
         le=1 << 30,
         description="a record (tick map or batch) larger than this is rejected as too_large",
+    )
+    max_depth_levels: int = Field(
+        1_000, gt=0, le=1_000_000, description="price levels per side of a depth book; more: too_many_levels"
     )
 
 
@@ -238,6 +258,7 @@ class Settings(BaseSettings):
     checkpoint: CheckpointSettings = Field(default_factory=CheckpointSettings)
     event_time: EventTimeSettings = Field(default_factory=EventTimeSettings)
     limits: LimitsSettings = Field(default_factory=LimitsSettings)
+    statistics: StatisticsSettings = Field(default_factory=StatisticsSettings)
 
     @field_validator("bar_groups")
     @classmethod
@@ -260,7 +281,9 @@ class Settings(BaseSettings):
         return value
 
     def bar_specs(self) -> list[BarSpec]:
-        context = dataclasses.replace(self.sessions.context(), revisions=self.revision_window_ms > 0)
+        context = dataclasses.replace(
+            self.sessions.context(), revisions=self.revision_window_ms > 0, statistics=self.statistics.options()
+        )
         return parse_specs(self.bars, self.bar_groups, context)
 
     @property
@@ -286,6 +309,7 @@ class Settings(BaseSettings):
             max_held=guard.max_held_ticks,
             contradict_messages=guard.contradict_messages,
             max_symbols=self.limits.max_symbols,
+            max_depth_levels=self.limits.max_depth_levels,
         )
 
     def masked(self) -> dict[str, Any]:

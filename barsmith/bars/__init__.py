@@ -2,9 +2,10 @@
 (what a bar carries) and the column table.
 
 Importing this package registers the built-in families (``time``, ``session``,
-``trades``, ``volume``, ``notional``) and statistic groups (``core``, ``spread``).
+``trades``, ``volume``, ``notional``, and the imbalance families) and statistic groups (``core``, ``spread``,
+``signed``, and the microstructure groups ``mid``, ``cost``, ``depth``, ``flow``, ``rv``).
 """
 
-from barsmith.bars import core, interval, session, spread, threshold
+from barsmith.bars import core, imbalance, interval, micro, session, signed, spread, threshold
 
-__all__ = ["core", "interval", "session", "spread", "threshold"]
+__all__ = ["core", "imbalance", "interval", "micro", "session", "signed", "spread", "threshold"]

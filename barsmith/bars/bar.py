@@ -64,6 +64,8 @@ class BarLayout:
         self.family_width = len(family.columns)
         self.trade_accs: list[int] = [j for j, group in enumerate(self.groups) if group.on_trade]
         self.book_accs: list[int] = [j for j, group in enumerate(self.groups) if group.on_closing_book]
+        self.quote_accs: list[int] = [j for j, group in enumerate(self.groups) if group.on_quote]
+        self.signs = any(group.signs for group in self.groups)
         # Per engine tracker: the (accumulator, slot) pairs that weight it by time.
         self.held: list[list[tuple[int, int]]] = [[] for _ in tracker_index]
         self.tracked: list[tuple[int, int, int]] = []  # (tracker, accumulator, slot), flat

@@ -12,6 +12,7 @@ from typing import TYPE_CHECKING, Any
 
 from barsmith.bars.columns import Column
 from barsmith.bars.group import Accumulator, StatGroup, register_group
+from barsmith.book.book import SymbolBook
 
 if TYPE_CHECKING:
     from barsmith.bars.bar import OpenBar
@@ -44,7 +45,7 @@ class CoreAccumulator(Accumulator):
         self.notional = 0.0
         self.trades = 0
 
-    def trade(self, px: float, qty: float) -> None:
+    def trade(self, px: float, qty: float, sign: int, book: SymbolBook) -> None:
         if self.trades == 0:
             self.open = self.high = self.low = px
         elif px > self.high:

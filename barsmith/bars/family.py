@@ -43,6 +43,7 @@ from mypy_extensions import mypyc_attr
 
 from barsmith.bars.calendar import Calendars
 from barsmith.bars.columns import Column
+from barsmith.bars.group import StatOptions
 
 if TYPE_CHECKING:
     from barsmith.bars.bar import OpenBar
@@ -58,6 +59,7 @@ class SpecContext:
     calendars: Calendars | None = None  # trading calendars (the sessions settings)
     outside: str = "drop"  # session families: "drop" messages outside sessions, or give them "bars"
     revisions: bool = False  # bars may be revised (revision_window_ms > 0): they carry ``revision``
+    statistics: StatOptions | None = None  # settings of statistic groups (the ``statistics`` settings)
 
 
 @mypyc_attr(allow_interpreted_subclasses=True)  # an extension point: may be subclassed outside barsmith

@@ -4,8 +4,13 @@ A :class:`StatGroup` is one accumulator with fixed hooks and its own columns. Pe
 the engine creates one :class:`Accumulator` of each group its spec carries, and calls
 only the hooks the group asks for:
 
-* ``trade(px, qty)`` -- a trade of the bar (it happens before its message's quote
-  changes);
+* ``trade(px, qty, sign, book)`` -- a trade of the bar (it happens before its
+  message's quote changes): ``book`` is the book prevailing before the message, and
+  ``sign`` the trade's Lee--Ready direction (+1 buy, -1 sell, 0 unsigned) when the
+  group sets ``signs`` (else 0: the engine signs trades only for groups that ask);
+* ``quote(bid_px, bid_qty, ask_px, ask_qty, book)`` -- for groups with ``on_quote``:
+  a message of the bar changed the book from the top of book given (each ``None``
+  where it was undefined: not live, or that field unset) to ``book``;
 * ``opened(slot, value)`` / ``held(slot, value, since, until, start)`` -- for each
   quantity the group *tracks* (a :class:`Tracker`: a value derived from the book, such
   as the spread): the value in effect when the bar opened, and each value with the
@@ -17,7 +22,9 @@ only the hooks the group asks for:
 * ``to_state()`` / ``restore(data)`` -- the accumulator as plain data, for checkpoints.
 
 A group is registered under its name (:func:`register_group`); a bar set names the
-groups it carries (README, "Bars"). Adding a statistic is one module with its group,
+groups it carries (README, "Bars"). A group with a setting (the realized variance's
+sampling interval) answers ``configured(options)`` with a copy for those settings,
+whose ``label`` names them (checkpoints compare labels). Adding a statistic is one module with its group,
 its accumulator, its columns and its tests.
 """
 
@@ -52,7 +59,12 @@ class Accumulator:
     """One bar's state for one group. Every hook is a no-op here; a group overrides
     what it needs and says so in its :class:`StatGroup` flags."""
 
-    def trade(self, px: float, qty: float) -> None:
+    def trade(self, px: float, qty: float, sign: int, book: SymbolBook) -> None:
+        return None
+
+    def quote(
+        self, bid_px: float | None, bid_qty: float | None, ask_px: float | None, ask_qty: float | None, book: SymbolBook
+    ) -> None:
         return None
 
     def opened(self, slot: int, value: float | None) -> None:
@@ -74,6 +86,16 @@ class Accumulator:
         raise NotImplementedError
 
 
+class StatOptions:
+    """The settings statistic groups may read (the ``statistics`` settings)."""
+
+    def __init__(self, rv_sample_ns: int = 1_000_000_000, depth_levels: int = 5) -> None:
+        if rv_sample_ns <= 0 or depth_levels <= 0:
+            raise ValueError("the realized-variance sampling interval and the depth levels must be positive")
+        self.rv_sample_ns = rv_sample_ns
+        self.depth_levels = depth_levels
+
+
 @mypyc_attr(allow_interpreted_subclasses=True)  # an extension point: may be subclassed outside barsmith
 class StatGroup:
     """A statistic group: its name, columns, the tracked quantities it weights by time,
@@ -87,16 +109,25 @@ class StatGroup:
         trackers: tuple[Tracker, ...] = (),
         on_trade: bool = False,
         on_closing_book: bool = False,
+        signs: bool = False,
+        on_quote: bool = False,
     ) -> None:
         self.name = name
+        self.label = name  # the name and any settings (see configured)
         self.doc = doc
         self.columns = columns
         self.trackers = trackers
-        self.on_trade = on_trade
+        self.on_trade = on_trade or signs
         self.on_closing_book = on_closing_book
+        self.signs = signs
+        self.on_quote = on_quote
 
     def accumulator(self) -> Accumulator:
         raise NotImplementedError
+
+    def configured(self, options: StatOptions) -> StatGroup:
+        """The group for these settings (itself, for a group without settings)."""
+        return self
 
 
 GROUPS: dict[str, StatGroup] = {}

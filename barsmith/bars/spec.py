@@ -3,9 +3,10 @@
 The family keyword picks the sampling rule (``time:1m``, ``trades:50``,
 ``volume:5000``, ``notional:1e6``; see :mod:`barsmith.bars.family`); the optional
 ``@`` list names the statistic groups its bars carry (``time:1m@core`` for lean
-bars, ``volume:5000@core,spread``). Without it, a spec carries the default groups
-(the ``bar_groups`` setting; ``core`` and ``spread`` unless changed). ``core`` is
-always carried. The text as written is the bars' ``spec`` column.
+bars, ``volume:5000@core,spread``; ``@all`` for every group). Without it, a spec
+carries the default groups (the ``bar_groups`` setting; ``core`` and ``spread``
+unless changed). ``core`` is always carried. The text as written is the bars'
+``spec`` column.
 """
 
 from __future__ import annotations
@@ -20,13 +21,14 @@ import barsmith.bars  # noqa: F401  (registers the built-in families and groups)
 from barsmith.bars.bar import BAR_COLUMNS, DEFAULT_COLUMNS, layout_columns
 from barsmith.bars.columns import FRAME_HEAD, FRAME_TAIL, REVISION, Column
 from barsmith.bars.family import FAMILIES, FAMILY_COLUMNS, BarFamily, SpecContext
-from barsmith.bars.group import GROUPS
+from barsmith.bars.group import GROUPS, StatGroup, StatOptions
 from barsmith.bars.interval import TimeFamily
 from barsmith.bars.threshold import ThresholdFamily
 from barsmith.errors import BarSpecError
 
 DEFAULT_GROUPS: Final = ("core", "spread")
 ALWAYS: Final = "core"
+ALL: Final = "all"  # ``@all``: every registered group, in registration order
 
 
 class BarKind(enum.Enum):
@@ -60,6 +62,14 @@ class BarSpec:
     interval_ns: int = 0
     threshold: float = 0.0
     revisions: bool = False  # bars may be revised: they carry a ``revision`` column
+    # The groups themselves, configured by the ``statistics`` settings (one per name).
+    stat_groups: tuple[StatGroup, ...] = field(default=(), compare=False, repr=False)
+
+    def __post_init__(self) -> None:
+        if not self.stat_groups:
+            object.__setattr__(
+                self, "stat_groups", tuple(GROUPS[name].configured(StatOptions()) for name in self.groups)
+            )
 
     @property
     def is_time(self) -> bool:
@@ -68,7 +78,12 @@ class BarSpec:
     @property
     def columns(self) -> tuple[Column, ...]:
         """The columns of this spec's bars, in order (frame, groups, ``complete``)."""
-        return layout_columns([GROUPS[name] for name in self.groups], self.family.columns, self.revisions)
+        return layout_columns(self.stat_groups, self.family.columns, self.revisions)
+
+    @property
+    def group_labels(self) -> list[str]:
+        """The groups with their settings (``rv(1000ms)``): what a checkpoint compares."""
+        return [group.label for group in self.stat_groups]
 
     @property
     def file_stem(self) -> str:
@@ -101,7 +116,9 @@ class BarSpec:
         interval_ns = family.interval_ns if isinstance(family, TimeFamily) else 0
         threshold = family.threshold if isinstance(family, ThresholdFamily) else 0.0
         kind = BarKind(keyword) if keyword in _BUILT_IN else None
-        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions)
+        options = context.statistics if context.statistics is not None else StatOptions()
+        stat_groups = tuple(GROUPS[name].configured(options) for name in groups)
+        return cls(text, kind, family, groups, interval_ns, threshold, context.revisions, stat_groups)
 
 
 def _forms() -> str:
@@ -111,6 +128,9 @@ def _forms() -> str:
         "trades": "trades:<N>",
         "volume": "volume:<Q>",
         "notional": "notional:<X>",
+        "tick-imbalance": "tick-imbalance:<E0[T]>[,span=..][,bound=..]",
+        "volume-imbalance": "volume-imbalance:<E0[T]>[,...]",
+        "notional-imbalance": "notional-imbalance:<E0[T]>[,...]",
     }
     listed = [forms.get(keyword, f"{keyword}:<...>") for keyword in FAMILIES]
     return ", ".join(listed[:-1]) + " or " + listed[-1] + " (optionally @<groups>)"
@@ -120,10 +140,15 @@ def _groups(text: str, listed: str | None, default: Sequence[str]) -> tuple[str,
     names = [name.strip() for name in listed.split(",")] if listed is not None else list(default)
     if listed is not None and not any(names):
         raise BarSpecError(f"bad bar spec {text!r}: name at least one statistic group after '@'")
+    if ALL in names:
+        if len(names) > 1:
+            raise BarSpecError(f"bad bar spec {text!r}: '@all' stands alone (it names every statistic group)")
+        names = list(GROUPS)
     unknown = [name for name in names if name not in GROUPS]
     if unknown:
         raise BarSpecError(
-            f"bad bar spec {text!r}: unknown statistic group {unknown[0]!r} (known: {', '.join(sorted(GROUPS))})"
+            f"bad bar spec {text!r}: unknown statistic group {unknown[0]!r} "
+            f"(known: {', '.join(sorted(GROUPS))}, or all)"
         )
     if len(set(names)) != len(names):
         raise BarSpecError(f"bad bar spec {text!r}: a statistic group is named twice")
@@ -148,7 +173,11 @@ def column_table() -> str:
     ``barsmith columns``): the frame first, then each statistic group's, ``complete``."""
     lines = ["| column | group | type | null | meaning |", "|---|---|---|---|---|"]
     rows = [("frame", c) for c in FRAME_HEAD]
-    rows += [(f"{keyword}:", c) for keyword, columns in FAMILY_COLUMNS.items() for c in columns]
+    # Families with the same columns (the imbalance families) share their rows.
+    owners: dict[tuple[Column, ...], list[str]] = {}
+    for keyword, columns in FAMILY_COLUMNS.items():
+        owners.setdefault(columns, []).append(f"{keyword}:")
+    rows += [(", ".join(keywords), c) for columns, keywords in owners.items() for c in columns]
     rows += [(group.name, c) for group in GROUPS.values() for c in group.columns]
     rows += [("revisions", REVISION)]
     rows += [("frame", c) for c in FRAME_TAIL]

@@ -32,8 +32,13 @@
 
 enum field {
     F_UNKNOWN = 0, F_SYM, F_TS, F_SEQ, F_KIND,
-    F_BID_PX, F_BID_QTY, F_ASK_PX, F_ASK_QTY, F_TRADE_PX, F_TRADE_QTY
+    F_BID_PX, F_BID_QTY, F_ASK_PX, F_ASK_QTY, F_TRADE_PX, F_TRADE_QTY,
+    F_BIDS, F_ASKS
 };
+
+/* Depth levels of one side taken here (more go to the general path, which checks
+ * each price once with a set). */
+#define MAX_SCANNED_LEVELS 64
 
 enum value_kind { V_NIL, V_INT, V_FLOAT, V_STR };
 
@@ -164,7 +169,10 @@ field_of(const uint8_t *key, Py_ssize_t size)
         if (key_is(key, size, "seq", 3)) return F_SEQ;
         return F_UNKNOWN;
     case 4:
-        return key_is(key, size, "kind", 4) ? F_KIND : F_UNKNOWN;
+        if (key_is(key, size, "kind", 4)) return F_KIND;
+        if (key_is(key, size, "bids", 4)) return F_BIDS;
+        if (key_is(key, size, "asks", 4)) return F_ASKS;
+        return F_UNKNOWN;
     case 6:
         if (key_is(key, size, "bid_px", 6)) return F_BID_PX;
         if (key_is(key, size, "ask_px", 6)) return F_ASK_PX;
@@ -241,10 +249,102 @@ float_or_none(int has, double value)
     return PyFloat_FromDouble(value);
 }
 
+/* Depth levels at data[pos]: an array of [px, qty] pairs, numbers with px > 0 and
+ * qty >= 0, each price once, into *out (a new list of (px, qty) float tuples); *zero
+ * is set when a level has qty 0 (refused in a snapshot). Returns the position after
+ * them, NOT_SIMPLE, INCOMPLETE or PY_FAILED. */
+static Py_ssize_t
+scan_levels(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out, int *zero)
+{
+    if (pos >= end) {
+        return INCOMPLETE;
+    }
+    uint8_t header = data[pos];
+    if (header < 0x90 || header > 0x9F) {
+        return NOT_SIMPLE; /* longer lists: the general path */
+    }
+    Py_ssize_t count = header - 0x90;
+    pos += 1;
+    double prices[MAX_SCANNED_LEVELS];
+    double quantities[MAX_SCANNED_LEVELS];
+    for (Py_ssize_t i = 0; i < count; i++) {
+        if (pos >= end) {
+            return INCOMPLETE;
+        }
+        if (data[pos] != 0x92) {
+            return NOT_SIMPLE;
+        }
+        pos += 1;
+        double pair[2];
+        for (int j = 0; j < 2; j++) {
+            Value v = {V_NIL, 0, 0.0, NULL, 0};
+            Py_ssize_t next = read_value(data, pos, end, &v);
+            if (next < 0) {
+                return next;
+            }
+            if (v.kind == V_INT) {
+                if (v.u > EXACT_INT_LIMIT) {
+                    return NOT_SIMPLE;
+                }
+                pair[j] = (double)v.u;
+            } else if (v.kind == V_FLOAT) {
+                pair[j] = v.d;
+            } else {
+                return NOT_SIMPLE;
+            }
+            if (!isfinite(pair[j])) {
+                return NOT_SIMPLE;
+            }
+            pos = next;
+        }
+        if (!(pair[0] > 0.0) || !(pair[1] >= 0.0)) {
+            return NOT_SIMPLE;
+        }
+        for (Py_ssize_t k = 0; k < i; k++) {
+            if (prices[k] == pair[0]) {
+                return NOT_SIMPLE; /* a price listed twice: the general path rejects it */
+            }
+        }
+        if (pair[1] == 0.0) {
+            *zero = 1;
+        }
+        prices[i] = pair[0];
+        quantities[i] = pair[1];
+    }
+    PyObject *list = PyList_New(count);
+    if (list == NULL) {
+        return PY_FAILED;
+    }
+    for (Py_ssize_t i = 0; i < count; i++) {
+        PyObject *level = Py_BuildValue("(dd)", prices[i], quantities[i]);
+        if (level == NULL) {
+            Py_DECREF(list);
+            return PY_FAILED;
+        }
+        PyList_SET_ITEM(list, i, level);
+    }
+    *out = list;
+    return pos;
+}
+
+static Py_ssize_t scan_tick_fields(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end,
+                                   PyObject **tick, PyObject **levels);
+
 /* Decode one tick map at data[pos] into *tick (a new reference). Returns the position
  * after it, NOT_SIMPLE, INCOMPLETE, or PY_FAILED. */
 static Py_ssize_t
 scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **tick)
+{
+    PyObject *levels[2] = {NULL, NULL}; /* bids, asks: owned here, whatever happens */
+    Py_ssize_t result = scan_tick_fields(self, data, pos, end, tick, levels);
+    Py_XDECREF(levels[0]);
+    Py_XDECREF(levels[1]);
+    return result;
+}
+
+static Py_ssize_t
+scan_tick_fields(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **tick,
+                 PyObject **levels)
 {
     if (pos >= end) {
         return INCOMPLETE;
@@ -266,6 +366,7 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
     /* has[i]: the field carried a number (not nil); num[i]: that number. */
     int has[F_TRADE_QTY + 1] = {0};
     double num[F_TRADE_QTY + 1] = {0};
+    int zero_qty = 0; /* a depth level with qty 0 (only a delta may have one) */
 
     for (int i = 0; i < count; i++) {
         if (pos >= end) {
@@ -288,6 +389,13 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
             return NOT_SIMPLE;
         }
         seen |= 1u << field;
+        if (field == F_BIDS || field == F_ASKS) {
+            pos = scan_levels(data, key_end, end, &levels[field == F_ASKS], &zero_qty);
+            if (pos < 0) {
+                return pos;
+            }
+            continue;
+        }
         Value v = {V_NIL, 0, 0.0, NULL, 0};
         pos = read_value(data, key_end, end, &v);
         if (pos < 0) {
@@ -373,11 +481,14 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
     if (has[F_TRADE_PX] != has[F_TRADE_QTY]) {
         return NOT_SIMPLE;
     }
+    if ((levels[0] != NULL || levels[1] != NULL) && (present || (is_snapshot && zero_qty))) {
+        return NOT_SIMPLE; /* mixed book forms, or a snapshot level without quantity: rejected there */
+    }
     PyObject *sym = symbol_of(self, sym_raw, sym_len);
     if (sym == NULL) {
         return PyErr_Occurred() ? PY_FAILED : NOT_SIMPLE;
     }
-    PyObject *args[11];
+    PyObject *args[13];
     args[0] = sym;
     args[1] = PyLong_FromLongLong(ts);
     args[2] = PyLong_FromLongLong(seq);
@@ -390,23 +501,30 @@ scan_tick(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py
     args[8] = float_or_none(has[F_ASK_QTY], num[F_ASK_QTY]);
     args[9] = float_or_none(has[F_TRADE_PX], num[F_TRADE_PX]);
     args[10] = float_or_none(has[F_TRADE_QTY], num[F_TRADE_QTY]);
+    args[11] = levels[0] != NULL ? levels[0] : Py_None;
+    args[12] = levels[1] != NULL ? levels[1] : Py_None;
+    Py_INCREF(args[11]);
+    Py_INCREF(args[12]);
     PyObject *result = NULL;
     int complete = 1;
-    for (int i = 0; i < 11; i++) {
+    for (int i = 0; i < 13; i++) {
         if (args[i] == NULL) {
             complete = 0;
         }
     }
     if (complete) {
-        result = PyObject_Vectorcall(new_tick, args, 11, NULL);
+        /* Without levels, the usual 11 arguments (the depth ones default to None). */
+        Py_ssize_t nargs = (levels[0] != NULL || levels[1] != NULL) ? 13 : 11;
+        result = PyObject_Vectorcall(new_tick, args, nargs, NULL);
     }
     if (result != NULL && PyObject_GC_IsTracked(result)) {
-        /* A tick holds a str, ints, floats, a bool and Nones: it can never be part of
-         * a reference cycle, so the cyclic collector need not visit it (each young
+        /* A tick holds a str, ints, floats, a bool, Nones and its levels (fresh lists of
+         * number pairs): nothing it holds can refer back to it, so it can never be part
+         * of a reference cycle and the cyclic collector need not visit it (each young
          * collection would visit every tick made since the last one). */
         PyObject_GC_UnTrack(result);
     }
-    for (int i = 0; i < 11; i++) {
+    for (int i = 0; i < 13; i++) {
         Py_XDECREF(args[i]);
     }
     if (result == NULL) {

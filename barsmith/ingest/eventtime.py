@@ -51,6 +51,7 @@ class StreamLimits:
     max_held: int = 10_000
     contradict_messages: int = 1_000
     max_symbols: int = 200_000
+    max_depth_levels: int = 1_000  # price levels per side of a depth book
 
 
 class HeldTick:

@@ -2,10 +2,10 @@
 
 Decoding a map with msgpack builds a dict, key strings and float objects, and the
 validator then reads them back. For the usual message — a map whose keys are the
-wire format's own, with string, integer, float or nil values, alone or in an array
-(a batched record) — the scanner in ``_wirescan.c`` reads the bytes once and builds
-the ticks directly. It is C because it runs once per tick and sets the service's
-throughput.
+wire format's own, with string, integer, float or nil values (depth levels: up to 15
+``[px, qty]`` number pairs a side), alone or in an array (a batched record) — the
+scanner in ``_wirescan.c`` reads the bytes once and builds the ticks directly. It is
+C because it runs once per tick and sets the service's throughput.
 
 It accepts a record only when every field passes exactly the checks of
 :func:`barsmith.ingest.ticks.decode_tick`; anything else (an unknown key, an

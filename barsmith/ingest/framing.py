@@ -85,8 +85,10 @@ CHAIN_VALUES: Final = 16
 # Where a tick map can start: a map header with room for the four required keys.
 _TICK_START: Final = re.compile(b"[\x84-\x8f\xde\xdf]")
 _ARRAY_HEADERS: Final = frozenset([*range(0x90, 0xA0), 0xDC, 0xDD])
+# The wire format's keys. A valid tick with only these holds no map inside it: its values are
+# scalars, and its depth levels (bids, asks) arrays of numbers.
 _WIRE_KEYS: Final = frozenset(
-    ("sym", "ts", "seq", "kind", "bid_px", "bid_qty", "ask_px", "ask_qty", "trade_px", "trade_qty")
+    ("sym", "ts", "seq", "kind", "bid_px", "bid_qty", "ask_px", "ask_qty", "trade_px", "trade_qty", "bids", "asks")
 )
 _DECODE_ERRORS: Final = (msgpack.exceptions.UnpackException, ValueError, TypeError)
 

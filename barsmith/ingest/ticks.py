@@ -2,9 +2,11 @@
 
 Keys (see the README for the table): ``sym``, ``ts`` (ns since the epoch, UTC),
 ``seq``, ``kind`` (``"delta"`` / ``"snapshot"``), optional ``bid_px``, ``bid_qty``,
-``ask_px``, ``ask_qty`` (a number, or nil to clear that side) and the pair
-``trade_px`` / ``trade_qty``. Unknown keys are ignored so that later formats (depth
-levels) stay readable.
+``ask_px``, ``ask_qty`` (a number, or nil to clear that side), the pair
+``trade_px`` / ``trade_qty``, and depth levels ``bids`` / ``asks`` (lists of
+``[px, qty]`` pairs: in a snapshot the whole side, in a delta the changed levels, qty
+0 removing one). A side is given by levels or by top-of-book fields, never both in
+one message (``mixed_book``). Unknown keys are ignored.
 
 A record that breaks the format never raises past :func:`decode_tick`'s caller: it
 raises :class:`MalformedTickError` carrying a :class:`RejectReason`, which the engine
@@ -47,6 +49,8 @@ class RejectReason(enum.Enum):
     BACKDATED = "backdated"
     SYMBOL_LIMIT = "symbol_limit"
     LATE = "late"
+    MIXED_BOOK = "mixed_book"
+    TOO_MANY_LEVELS = "too_many_levels"
 
 
 class MalformedTickError(Exception):
@@ -66,8 +70,10 @@ class Tick:
     __slots__ = (
         "ask_px",
         "ask_qty",
+        "asks",
         "bid_px",
         "bid_qty",
+        "bids",
         "is_snapshot",
         "present",
         "seq",
@@ -90,6 +96,8 @@ class Tick:
         ask_qty: float | None = None,
         trade_px: float | None = None,
         trade_qty: float | None = None,
+        bids: list[tuple[float, float]] | None = None,
+        asks: list[tuple[float, float]] | None = None,
     ) -> None:
         self.sym = sym
         self.ts = ts
@@ -102,6 +110,12 @@ class Tick:
         self.ask_qty = ask_qty
         self.trade_px = trade_px
         self.trade_qty = trade_qty
+        self.bids = bids  # depth levels (None: the message has no ``bids`` key)
+        self.asks = asks
+
+    @property
+    def has_levels(self) -> bool:
+        return self.bids is not None or self.asks is not None
 
     def to_wire(self) -> dict[str, Any]:
         """The message as a wire map (for recording, publishing and tests)."""
@@ -122,6 +136,10 @@ class Tick:
         if self.trade_px is not None:
             out["trade_px"] = self.trade_px
             out["trade_qty"] = self.trade_qty
+        if self.bids is not None:
+            out["bids"] = [[px, qty] for px, qty in self.bids]
+        if self.asks is not None:
+            out["asks"] = [[px, qty] for px, qty in self.asks]
         return out
 
     def __repr__(self) -> str:
@@ -140,13 +158,15 @@ def new_tick(
     ask_qty: float | None,
     trade_px: float | None,
     trade_qty: float | None,
+    bids: list[tuple[float, float]] | None = None,
+    asks: list[tuple[float, float]] | None = None,
 ) -> Tick:
     """``Tick(...)`` with every field given by position: what the record scanner calls.
 
     Compiled, a function takes its arguments from C as they lie, where calling the class
     packs them into a tuple and parses that against the keywords of ``__init__`` first:
     a tenth of a replay's time went there."""
-    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)
+    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty, bids, asks)
 
 
 _MISSING: Final[Any] = object()
@@ -202,6 +222,37 @@ def _quote(rec: dict[str, Any], key: str, positive: bool) -> tuple[bool, float |
     return True, _number(key, value, positive)
 
 
+def _levels(key: str, value: Any, snapshot: bool) -> list[tuple[float, float]] | None:
+    """``bids`` / ``asks``: a list of [px, qty] pairs, each price once."""
+    if value is _MISSING:
+        return None
+    if type(value) is not list:
+        got = type(value).__name__
+        raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}: expected a list of [px, qty], got {got}")
+    items: list[Any] = value
+    levels: list[tuple[float, float]] = []
+    for i in range(len(items)):
+        level = items[i]
+        if type(level) is not list or len(level) != 2:
+            raise MalformedTickError(RejectReason.WRONG_TYPE, f"{key}[{i}]: expected a [px, qty] pair")
+        px = level[0]
+        qty = level[1]
+        # The usual level (two floats in range) is checked here; anything else by _number,
+        # which says what is wrong (messages are only formatted then).
+        if type(px) is not float or not 0.0 < px < math.inf:
+            px = _number(f"{key}[{i}] px", px, True)
+        if type(qty) is not float or not (0.0 < qty < math.inf or (qty == 0.0 and not snapshot)):
+            qty = _number(f"{key}[{i}] qty", qty, snapshot)  # a snapshot lists resting levels only
+        levels.append((px, qty))
+    if len({px for px, _ in levels}) != len(levels):
+        seen: set[float] = set()
+        for px, _ in levels:
+            if px in seen:
+                raise MalformedTickError(RejectReason.BAD_VALUE, f"{key}: the price {px!r} is listed twice")
+            seen.add(px)
+    return levels
+
+
 def decode_tick(rec: Any) -> Tick:
     """Validate one decoded msgpack object against the wire format.
 
@@ -253,4 +304,11 @@ def decode_tick(rec: Any) -> Tick:
             )
         trade_px = _number("trade_px", raw_px, True)
         trade_qty = _number("trade_qty", raw_qty, True)
-    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty)
+    bids = _levels("bids", rec.get("bids", _MISSING), is_snapshot)
+    asks = _levels("asks", rec.get("asks", _MISSING), is_snapshot)
+    if (bids is not None or asks is not None) and present:
+        fields = ", ".join(k for k in ("bid_px", "bid_qty", "ask_px", "ask_qty") if k in rec)
+        raise MalformedTickError(
+            RejectReason.MIXED_BOOK, f"depth levels together with top-of-book fields ({fields}): one form per book"
+        )
+    return Tick(sym, ts, seq, is_snapshot, present, bid_px, bid_qty, ask_px, ask_qty, trade_px, trade_qty, bids, asks)

@@ -8,6 +8,18 @@ messages are lost (sequence gaps) or sent twice (duplicates); arrival order jitt
 across symbols by up to ``jitter_ms`` while each symbol stays in order. Optionally a
 number of malformed records are mixed in, to exercise the rejects path.
 
+With ``order_flow`` the trades follow a more realistic sign process: the side of a
+symbol's trade repeats the previous one with probability ``sign_persistence`` (order
+flow is persistent), a share of trades match at the midpoint (signed by the tick test,
+not the quote), and a share of trades move the mid a tick their way (price impact).
+Without it, each trade's side is an independent coin toss at the touch (the bundled
+demo feed).
+
+With ``depth`` > 0 the feed carries depth levels instead of top-of-book fields:
+``depth`` levels per side one tick apart from the touch, the touch's sizes as in the
+top-of-book feed and deeper sizes a fixed pattern of the mid; snapshots list every
+level, deltas the levels that changed (qty 0 for one that went).
+
 The same arguments always give the same bytes.
 """
 
@@ -49,6 +61,11 @@ class SynthConfig:
     duplicate_rate: float = 0.0006
     jitter_ms: float = 40.0
     malformed: int = 0
+    order_flow: bool = False  # the sign process below (off: the demo feed's coin tosses)
+    sign_persistence: float = 0.8  # P(a trade is on the same side as the symbol's last one)
+    midpoint_share: float = 0.1  # trades matched at the midpoint
+    impact_share: float = 0.1  # trades after which the mid moves a tick their way
+    depth: int = 0  # levels per side (0: top-of-book fields)
 
 
 @dataclass(slots=True)
@@ -64,6 +81,9 @@ class _Listing:
     last_snapshot_ns: int = -(10**18)
     last_arrival_ns: int = 0
     last_message: dict[str, Any] | None = None
+    last_buy: bool = True
+    sent_bids: dict[float, float] | None = None  # the depth levels last sent
+    sent_asks: dict[float, float] | None = None
 
 
 def _listings(cfg: SynthConfig, rng: random.Random) -> list[_Listing]:
@@ -116,7 +136,9 @@ def _event(listing: _Listing, ts: int, cfg: SynthConfig, rng: random.Random) -> 
         return msg
     msg["kind"] = "delta"
     roll = rng.random()
-    if roll < cfg.trade_share:
+    if roll < cfg.trade_share and cfg.order_flow:
+        _flow_trade(listing, msg, cfg, rng)
+    elif roll < cfg.trade_share:
         buy = rng.random() < 0.5
         side_qty = listing.ask_qty if buy else listing.bid_qty
         qty = float(rng.choice((1, 5, 10, 25, 50, 100, 100, 200, 300, 500)))
@@ -148,6 +170,67 @@ def _event(listing: _Listing, ts: int, cfg: SynthConfig, rng: random.Random) -> 
     return msg
 
 
+def _flow_trade(listing: _Listing, msg: dict[str, Any], cfg: SynthConfig, rng: random.Random) -> None:
+    """A trade of the ``order_flow`` process (see the module docstring)."""
+    buy = listing.last_buy if rng.random() < cfg.sign_persistence else not listing.last_buy
+    listing.last_buy = buy
+    qty = float(rng.choice((1, 5, 10, 25, 50, 100, 100, 200, 300, 500)))
+    if rng.random() < cfg.midpoint_share:
+        msg["trade_px"] = _px(listing, listing.mid_ticks)  # a midpoint match: the touch is untouched
+        msg["trade_qty"] = qty
+        return
+    side_qty = listing.ask_qty if buy else listing.bid_qty
+    qty = min(qty, side_qty) if side_qty > 0 else qty
+    msg["trade_px"] = _px(
+        listing, listing.mid_ticks + (listing.half_spread_ticks if buy else -listing.half_spread_ticks)
+    )
+    msg["trade_qty"] = qty
+    if rng.random() < cfg.impact_share:
+        # The trade takes the touch and the quote moves its way, in the same message.
+        step = 1 if buy else -1
+        listing.mid_ticks = max(listing.half_spread_ticks + 5, listing.mid_ticks + step)
+        listing.bid_qty = float(rng.randint(1, 40) * 100)
+        listing.ask_qty = float(rng.randint(1, 40) * 100)
+        msg.update(_quote_fields(listing))
+    elif buy:
+        listing.ask_qty = max(0.0, listing.ask_qty - qty) or float(rng.randint(1, 30) * 100)
+        msg["ask_qty"] = listing.ask_qty
+    else:
+        listing.bid_qty = max(0.0, listing.bid_qty - qty) or float(rng.randint(1, 30) * 100)
+        msg["bid_qty"] = listing.bid_qty
+
+
+def _ladder(listing: _Listing, levels: int, bid_side: bool) -> dict[float, float]:
+    half = listing.half_spread_ticks
+    out: dict[float, float] = {}
+    for k in range(levels):
+        ticks = listing.mid_ticks - half - k if bid_side else listing.mid_ticks + half + k
+        if k == 0:
+            qty = listing.bid_qty if bid_side else listing.ask_qty
+        else:
+            qty = float(100 * (1 + (ticks * 7 + k * 13) % 30))
+        if qty > 0 and ticks > 0:
+            out[_px(listing, ticks)] = qty
+    return out
+
+
+def _to_levels(listing: _Listing, msg: dict[str, Any], levels: int) -> None:
+    """Replace the message's top-of-book fields by depth levels (see the module docstring)."""
+    for key in ("bid_px", "bid_qty", "ask_px", "ask_qty"):
+        msg.pop(key, None)
+    bids, asks = _ladder(listing, levels, True), _ladder(listing, levels, False)
+    if msg["kind"] == "snapshot" or listing.sent_bids is None or listing.sent_asks is None:
+        msg["bids"] = [[px, qty] for px, qty in sorted(bids.items(), reverse=True)]
+        msg["asks"] = [[px, qty] for px, qty in sorted(asks.items())]
+    else:
+        for key, new, old in (("bids", bids, listing.sent_bids), ("asks", asks, listing.sent_asks)):
+            changed = [[px, qty] for px, qty in new.items() if old.get(px) != qty]
+            changed += [[px, 0.0] for px in old if px not in new]
+            if changed:
+                msg[key] = changed
+    listing.sent_bids, listing.sent_asks = bids, asks
+
+
 def generate(cfg: SynthConfig) -> Iterator[dict[str, Any]]:
     """Yield ``cfg.messages`` tick maps in arrival order (valid ticks only)."""
     rng = random.Random(cfg.seed)
@@ -171,6 +254,8 @@ def generate(cfg: SynthConfig) -> Iterator[dict[str, Any]]:
         schedule(i)
         listing = listings[i]
         msg = _event(listing, ts, cfg, rng)
+        if cfg.depth:
+            _to_levels(listing, msg, cfg.depth)
         roll = rng.random()
         if roll < cfg.gap_rate and msg["kind"] == "delta":
             continue  # lost on the way: the receiver sees a sequence gap

@@ -40,6 +40,10 @@ def test_the_readme_column_table_is_the_column_table() -> None:
     assert found.group(1) == column_table(), "README column table is stale: paste `barsmith columns`"
 
 
+def test_column_docs_keep_the_markdown_table_intact() -> None:
+    assert all(row.count("|") == 6 for row in column_table().splitlines()), "a column's doc holds a '|'"
+
+
 def test_the_columns_command_prints_the_table(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["columns"]) == 0
     assert capsys.readouterr().out.strip() == column_table()
@@ -80,7 +84,11 @@ def test_each_spec_writes_its_own_columns_to_parquet_and_the_bus(tmp_path: Path,
     ("text", "message"),
     [
         ("time:1m@", "name at least one statistic group"),
-        ("time:1m@depthx", "unknown statistic group 'depthx' (known: core, spread)"),
+        (
+            "time:1m@depthx",
+            "unknown statistic group 'depthx' "
+            "(known: core, cost, crossing, depth, flow, mid, rv, signed, spread, or all)",
+        ),
         ("time:1m@spread,spread", "named twice"),
     ],
 )

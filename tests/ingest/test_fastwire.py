@@ -53,12 +53,34 @@ def records(draw: st.DrawFn) -> dict[str, Any]:
     for key in ("bid_px", "bid_qty", "ask_px", "ask_qty", "trade_px", "trade_qty"):
         if draw(st.booleans()):
             rec[key] = draw(numbers)
+    if draw(st.integers(0, 3)) == 0:
+        # Depth levels, usually without the top-of-book fields they must not be mixed with.
+        if draw(st.integers(0, 4)):
+            for key in ("bid_px", "bid_qty", "ask_px", "ask_qty"):
+                rec.pop(key, None)
+        for key in ("bids", "asks"):
+            if draw(st.booleans()):
+                rec[key] = draw(levels)
     if draw(st.integers(0, 19)) == 0:
         rec["extra"] = 1
     return rec
 
 
+prices = st.one_of(st.sampled_from([10.0, 10.5, 11.0, 0.0, -1.0, 9]), numbers)
+level = st.one_of(
+    st.lists(st.one_of(prices, st.sampled_from([0.0, -0.0, 1.0, 2.5, 3])), min_size=2, max_size=2),
+    st.lists(prices, max_size=3),
+    numbers,
+)
+levels = st.one_of(st.lists(level, max_size=17), numbers)
+
+
 def same(a: Any, b: Any) -> bool:
+    if isinstance(a, list) and isinstance(b, list):
+        return len(a) == len(b) and all(
+            same(x, y) and all(math.copysign(1.0, u) == math.copysign(1.0, v) for u, v in zip(x, y, strict=True))
+            for x, y in zip(a, b, strict=True)
+        )
     return a == b or (isinstance(a, float) and isinstance(b, float) and math.isnan(a) and math.isnan(b))
 
 
@@ -99,7 +121,8 @@ def assert_same_tick(got: Tick | None, expected: Tick) -> None:
 
 
 Tick_fields = (
-    "sym", "ts", "seq", "is_snapshot", "present", "bid_px", "bid_qty", "ask_px", "ask_qty", "trade_px", "trade_qty"
+    "sym", "ts", "seq", "is_snapshot", "present", "bid_px", "bid_qty", "ask_px", "ask_qty", "trade_px", "trade_qty",
+    "bids", "asks",
 )  # fmt: skip
 
 
@@ -231,3 +254,24 @@ def test_scanned_ticks_are_left_out_of_the_cyclic_collector() -> None:
     assert scan.tick is not None and not gc.is_tracked(scan.tick)
     batch = scan.scan_value(msgpack.packb([msgpack.unpackb(data)] * 2))
     assert isinstance(batch, list) and not any(gc.is_tracked(t) for t in batch)
+
+
+@pytest.mark.parametrize(
+    ("fields", "fast"),
+    [
+        ({"kind": "snapshot", "bids": [[10.0, 1.0], [9, 2]], "asks": []}, True),
+        ({"bids": [[10.0, 0.0]], "asks": [[10.5, -0.0]], "trade_px": 10.0, "trade_qty": 1.0}, True),
+        ({"kind": "snapshot", "bids": [[10.0, 0.0]]}, False),  # a snapshot level needs a quantity
+        ({"bids": [[10.0, 1.0], [10.0, 2.0]]}, False),  # a price twice
+        ({"bids": [[10.0, 1.0]], "ask_px": 10.5}, False),  # mixed book forms
+        ({"bids": [[10.0 + i, 1.0] for i in range(16)]}, False),  # beyond a fixarray: the general path
+    ],
+)
+def test_depth_levels_on_the_fast_path(fields: dict[str, Any], fast: bool) -> None:
+    rec = tick(**fields)
+    data = msgpack.packb(rec)
+    scan = scanner()
+    end = scan.scan_record(data, 0)
+    assert (end == len(data)) is fast
+    if fast:
+        assert_same_tick(scan.tick, decode_tick(msgpack.unpackb(data)))
