@@ -22,12 +22,14 @@ S = 1_000_000_000  # one second in ns
 MS = 1_000_000
 
 
-def tick(sym: str = "FENWORTH.KMX", ts: int = T0, seq: int = 1, kind: str = "delta", **fields: Any) -> dict[str, Any]:
+def tick(
+    sym: str = "FENWORTH~KESMOOR", ts: int = T0, seq: int = 1, kind: str = "delta", **fields: Any
+) -> dict[str, Any]:
     """A wire-format tick map; extra keyword arguments become fields as given."""
     return {"sym": sym, "ts": ts, "seq": seq, "kind": kind, **fields}
 
 
-def snap(sym: str = "FENWORTH.KMX", ts: int = T0, seq: int = 1, **quotes: Any) -> dict[str, Any]:
+def snap(sym: str = "FENWORTH~KESMOOR", ts: int = T0, seq: int = 1, **quotes: Any) -> dict[str, Any]:
     return tick(sym, ts, seq, "snapshot", **quotes)
 
 
@@ -73,7 +75,7 @@ def free_port_pair() -> int:
     raise RuntimeError("no free port pair on 127.0.0.1")
 
 
-FEED_SYMBOLS = ["FENWORTH.KMX", "MARROWAY.KMX"]
+FEED_SYMBOLS = ["FENWORTH~KESMOOR", "MARROWAY~KESMOOR"]
 FEED_SPECS = ("time:1s", "time:1m", "trades:3", "volume:25", "notional:1000")
 
 

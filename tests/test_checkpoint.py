@@ -60,9 +60,9 @@ def test_restore_anywhere_equals_the_uninterrupted_run(recs: list[dict[str, Any]
 def test_sealed_and_open_bars_survive() -> None:
     engine = Engine(parse_specs(["time:1m", "volume:100"]), 5 * S)
     recs = [
-        snap("FENWORTH.KMX", T0, 1, bid_px=1.0, ask_px=1.5),
-        trade("FENWORTH.KMX", T0 + 59 * S, 2, 1.25, 10.0),
-        trade("FENWORTH.KMX", T0 + 61 * S, 3, 1.5, 10.0),  # seals the first minute (not yet due)
+        snap("FENWORTH~KESMOOR", T0, 1, bid_px=1.0, ask_px=1.5),
+        trade("FENWORTH~KESMOOR", T0 + 59 * S, 2, 1.25, 10.0),
+        trade("FENWORTH~KESMOOR", T0 + 61 * S, 3, 1.5, 10.0),  # seals the first minute (not yet due)
     ]
     run(recs, engine)
     state = engine.to_state()
@@ -99,7 +99,7 @@ def test_unreadable_checkpoints_are_refused_with_advice(blob: bytes, message: st
 
 def test_pending_output_must_be_taken_first() -> None:
     engine = Engine(SPEC_LIST, 0)
-    engine.process([trade("FENWORTH.KMX", T0, 1, 1.0, 5.0)] * 1, [0], "t")
+    engine.process([trade("FENWORTH~KESMOOR", T0, 1, 1.0, 5.0)] * 1, [0], "t")
     engine.finish()
     with pytest.raises(Exception, match="pending"):
         encode_checkpoint(engine)
@@ -115,7 +115,7 @@ def v1_feed() -> list[dict[str, Any]]:
     checkpoint, written by barsmith 0.1.0's own encoder after the first 61 records, with
     the exactly-once Parquet sink's state (22 carried bars) in its meta."""
     recs: list[dict[str, Any]] = []
-    listings = (("FENWORTH.KMX", 0, 10.0), ("MARROWAY.KMX", 3 * S, 20.0))
+    listings = (("FENWORTH~KESMOOR", 0, 10.0), ("MARROWAY~KESMOOR", 3 * S, 20.0))
     for sym, offset, base in listings:
         recs.append(snap(sym, T0 + offset, 1, bid_px=base, bid_qty=5.0, ask_px=base + 0.5, ask_qty=5.0))
     seqs = dict.fromkeys([sym for sym, _, _ in listings], 1)

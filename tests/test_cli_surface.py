@@ -64,8 +64,8 @@ def one_line(capsys: pytest.CaptureFixture[str]) -> str:
 def bars_dir(tmp_path: Path) -> Path:
     """A replay output of two symbols and two specs; one symbol only ever quotes."""
     feed = tmp_path / "feed.msgpack"
-    records = [snap("MARROWAY.KMX", T0 + i * S, i + 1, bid_px=10.0, ask_px=10.5) for i in range(130)]
-    records += [trade("FENWORTH.KMX", T0 + 90 * S + i * S, i + 1, 20.0 + i % 3, 2.0) for i in range(60)]
+    records = [snap("MARROWAY~KESMOOR", T0 + i * S, i + 1, bid_px=10.0, ask_px=10.5) for i in range(130)]
+    records += [trade("FENWORTH~KESMOOR", T0 + 90 * S + i * S, i + 1, 20.0 + i % 3, 2.0) for i in range(60)]
     feed.write_bytes(b"".join(msgpack.packb(r) for r in sorted(records, key=lambda r: r["ts"])))
     out = tmp_path / "bars"
     assert run("replay", "--quiet", str(feed), "--bars", "time:1m", "--bars", "volume:1000", "--out", str(out)) == 0
@@ -116,10 +116,10 @@ def test_show_of_a_spec_or_symbol_not_there_lists_what_is(bars_dir: Path, capsys
     assert one_line(capsys) == (
         f"barsmith show: error: no bars of spec 'time:5m' in {bars_dir}; its specs: time:1m, volume:1000"
     )
-    assert run("show", str(bars_dir), "--symbol", "QUILLFERN.KMX") == 2
+    assert run("show", str(bars_dir), "--symbol", "QUILLFERN~KESMOOR") == 2
     assert one_line(capsys) == (
-        f"barsmith show: error: no bars of symbol 'QUILLFERN.KMX' in {bars_dir}; "
-        "2 symbol(s): FENWORTH.KMX, MARROWAY.KMX"
+        f"barsmith show: error: no bars of symbol 'QUILLFERN~KESMOOR' in {bars_dir}; "
+        "2 symbol(s): FENWORTH~KESMOOR, MARROWAY~KESMOOR"
     )
 
 
@@ -154,7 +154,7 @@ def test_a_duration_finer_than_a_millisecond_is_refused(
     lateness: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     feed = tmp_path / "f.msgpack"
-    feed.write_bytes(msgpack.packb(trade("FENWORTH.KMX", T0, 1, 10.0, 1.0)))
+    feed.write_bytes(msgpack.packb(trade("FENWORTH~KESMOOR", T0, 1, 10.0, 1.0)))
     with pytest.raises(SystemExit) as info:
         run("replay", str(feed), "--bars", "time:1m", "--out", str(tmp_path / "o"), "--lateness", lateness)
     assert info.value.code == 2
@@ -164,7 +164,7 @@ def test_a_duration_finer_than_a_millisecond_is_refused(
 
 def test_a_duration_of_whole_milliseconds_is_taken(tmp_path: Path) -> None:
     feed = tmp_path / "f.msgpack"
-    feed.write_bytes(msgpack.packb(trade("FENWORTH.KMX", T0, 1, 10.0, 1.0)))
+    feed.write_bytes(msgpack.packb(trade("FENWORTH~KESMOOR", T0, 1, 10.0, 1.0)))
     for lateness in ("1500ms", "2000000ns", "3000us", "0s"):
         assert run("replay", "--quiet", "--replace", str(feed), "--bars", "time:1m", "--out", str(tmp_path / "o"),
                    "--lateness", lateness) == 0  # fmt: skip

@@ -13,8 +13,8 @@ from barsmith.bars.spec import parse_specs
 from barsmith.checkpoint import decode_checkpoint, encode_checkpoint
 from barsmith.engine import Engine
 
-SYM = "FENWORTH.KMX"
-OTHER = "MARROWAY.KMX"
+SYM = "FENWORTH~KESMOOR"
+OTHER = "MARROWAY~KESMOOR"
 M = 60 * S
 
 

@@ -7,7 +7,7 @@ from factories import MS, T0, S, run_engine, snap, tick, trade
 
 from barsmith.ingest.ticks import RejectReason
 
-SYM = "FENWORTH.KMX"
+SYM = "FENWORTH~KESMOOR"
 M = 60 * S
 
 
@@ -118,10 +118,10 @@ def test_trade_counts_while_resyncing() -> None:
 
 
 def test_time_bar_closes_when_watermark_minus_lateness_reaches_end() -> None:
-    recs = [trade(SYM, T0 + S, 1, 10.0, 1.0), trade("MARROWAY.KMX", T0 + M + 1999 * MS, 1, 5.0, 1.0)]
+    recs = [trade(SYM, T0 + S, 1, 10.0, 1.0), trade("MARROWAY~KESMOOR", T0 + M + 1999 * MS, 1, 5.0, 1.0)]
     bars, _ = run_engine(recs, lateness_ns=2 * S, finish=False)
     assert bars == []  # watermark - lateness = T0 + M - 1 ms < end
-    recs.append(trade("MARROWAY.KMX", T0 + M + 2 * S, 2, 5.0, 1.0))
+    recs.append(trade("MARROWAY~KESMOOR", T0 + M + 2 * S, 2, 5.0, 1.0))
     bars, _ = run_engine(recs, lateness_ns=2 * S, finish=False)
     assert [(b.symbol, b.start) for b in bars] == [(SYM, T0)]
 
@@ -129,7 +129,7 @@ def test_time_bar_closes_when_watermark_minus_lateness_reaches_end() -> None:
 def test_late_message_is_recorded_and_still_updates_book_and_event_bars() -> None:
     recs = [
         snap(SYM, T0, 1, **quotes(10.0, 10.5)),
-        trade("MARROWAY.KMX", T0 + 2 * M, 1, 5.0, 1.0),  # closes SYM's first minute
+        trade("MARROWAY~KESMOOR", T0 + 2 * M, 1, 5.0, 1.0),  # closes SYM's first minute
         trade(SYM, T0 + 30 * S, 2, 10.5, 4.0, ask_px=10.25),  # late for time:1m
     ]
     bars, engine = run_engine(recs, specs=("time:1m", "volume:4"), lateness_ns=0)

@@ -35,7 +35,7 @@ from barsmith.runner import Runner
 from barsmith.sinks.base import MemorySink
 from barsmith.sources.files import FileSource
 
-SYMS = ["FENWORTH.KMX", "MARROWAY.KMX", "QUILLFERN.KMX"]
+SYMS = ["FENWORTH~KESMOOR", "MARROWAY~KESMOOR", "QUILLFERN~KESMOOR"]
 SPEC_TEXTS = ["time:1s", "time:3s", "trades:2", "volume:5", "notional:120"]
 SPECS = parse_specs(SPEC_TEXTS)
 MODEL_SPECS = [

@@ -93,7 +93,7 @@ def test_the_pandas_example_runs_on_the_quick_start_output(
     (block,) = [b for b in readme_blocks("python") if "read_parquet" in b]
     exec(compile(block.replace(QUICK_DIR, str(out)), "README.md", "exec"), {})
     printed = capsys.readouterr().out
-    assert "datetime64[ns, UTC]" in printed and "not_a_map" in printed and "CORVESTRA.KMX" in printed
+    assert "datetime64[ns, UTC]" in printed and "not_a_map" in printed and "CORVESTRA~KESMOOR" in printed
 
 
 def example(name: str) -> Any:
@@ -106,7 +106,7 @@ def example(name: str) -> Any:
 
 def test_the_tick_example_is_a_valid_tick() -> None:
     tick = decode_tick(example("tick"))
-    assert tick.sym == "CORVESTRA.KMX" and tick.trade_qty == 25.0
+    assert tick.sym == "CORVESTRA~KESMOOR" and tick.trade_qty == 25.0
 
 
 def test_the_bar_example_has_the_columns_and_adds_up(demo: tuple[Path, RunSummary]) -> None:

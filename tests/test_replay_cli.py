@@ -72,7 +72,7 @@ def test_split_feed_gives_the_same_bars_as_one_file(tmp_path: Path) -> None:
 
 
 def test_truncated_file_is_reported_and_valid_records_kept(feed_file: FeedFactory, tmp_path: Path) -> None:
-    records = [trade("FENWORTH.KMX", T0 + i * S, i + 1, 10.0, 1.0) for i in range(5)]
+    records = [trade("FENWORTH~KESMOOR", T0 + i * S, i + 1, 10.0, 1.0) for i in range(5)]
     data = b"".join(msgpack.packb(r) for r in records)
     path = tmp_path / "cut.msgpack"
     path.write_bytes(data[:-3])
@@ -95,7 +95,7 @@ def test_truncated_file_is_reported_and_valid_records_kept(feed_file: FeedFactor
 def test_bad_spec_is_one_line_and_exit_2(
     args: list[str], message: str, feed_file: FeedFactory, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    path = feed_file([trade("FENWORTH.KMX", T0, 1, 10.0, 1.0)])
+    path = feed_file([trade("FENWORTH~KESMOOR", T0, 1, 10.0, 1.0)])
     assert replay(str(path), *args, "--out", str(tmp_path / "o")) == 2
     err = capsys.readouterr().err.strip()
     assert message in err and "\n" not in err
@@ -107,7 +107,7 @@ def test_missing_file_is_exit_2(tmp_path: Path, capsys: pytest.CaptureFixture[st
 
 
 def test_existing_output_needs_replace(feed_file: FeedFactory, tmp_path: Path) -> None:
-    path = feed_file([trade("FENWORTH.KMX", T0, 1, 10.0, 1.0)])
+    path = feed_file([trade("FENWORTH~KESMOOR", T0, 1, 10.0, 1.0)])
     assert replay(str(path), "--bars", "time:1m", "--out", str(tmp_path / "o")) == 0
     assert replay(str(path), "--bars", "time:1m", "--out", str(tmp_path / "o")) == 2
     assert replay(str(path), "--bars", "time:1m", "--out", str(tmp_path / "o"), "--replace") == 0
@@ -146,7 +146,7 @@ def test_reject_details_say_what_went_wrong_without_empty_parentheses(synth_feed
     """Every kind of malformed record the generator makes, plus bytes msgpack refuses
     with an exception that carries no message: each detail is words, never "X: " or "()"."""
     garbage = tmp_path / "garbage.msgpack"
-    good = msgpack.packb(trade("FENWORTH.KMX", T0, 1, 10.0, 1.0))
+    good = msgpack.packb(trade("FENWORTH~KESMOOR", T0, 1, 10.0, 1.0))
     garbage.write_bytes(good + b"\xc1\xc1\xc1" + good)  # 0xc1: never used, msgpack's FormatError says nothing
     for feed, name in ((synth_feed, "synth"), (garbage, "garbage")):
         assert replay(str(feed), "--bars", "time:1m", "--out", str(tmp_path / name)) == 0

@@ -24,7 +24,7 @@ from barsmith.runner import Runner
 from barsmith.sinks.base import MemorySink
 from barsmith.sources.base import ListSource, RecordBatch
 
-A, B = "FENWORTH.KMX", "MARROWAY.KMX"
+A, B = "FENWORTH~KESMOOR", "MARROWAY~KESMOOR"
 M = 60 * S
 WINDOW = 5 * M
 
@@ -116,7 +116,7 @@ def test_revisions_survive_checkpoints_at_every_cut() -> None:
     # for the stream, some inside the five-minute window, some past it (late).
     rng = random.Random(7)
     arrivals: list[tuple[int, int, dict[str, Any]]] = []
-    for sym in (A, B, "QUILLFERN.KMX"):
+    for sym in (A, B, "QUILLFERN~KESMOOR"):
         ts = arrived = T0
         for seq in range(1, 60):
             ts += rng.randint(1, 40) * S

@@ -19,7 +19,7 @@ from barsmith.sources.base import ListSource, RecordBatch, pause
 def _batches(count: int) -> list[RecordBatch]:
     out = []
     for n in range(count):
-        record = trade("FENWORTH.KMX", T0 + n * 60_000_000_000, n + 1, 10.0 + n, 1.0)
+        record = trade("FENWORTH~KESMOOR", T0 + n * 60_000_000_000, n + 1, 10.0 + n, 1.0)
         out.append(RecordBatch("replay", "test", [record], [n]))
     return out
 

@@ -53,7 +53,7 @@ def _modules_after(code: str, env: dict[str, str] | None = None) -> set[str]:
 
 
 def _one_record_feed(path: Path) -> Path:
-    tick = {"sym": "FENWORTH.KMX", "ts": 1_798_794_012_250_000_000, "seq": 1, "kind": "snapshot", "bid_px": 10.0}
+    tick = {"sym": "FENWORTH~KESMOOR", "ts": 1_798_794_012_250_000_000, "seq": 1, "kind": "snapshot", "bid_px": 10.0}
     path.write_bytes(msgpack.packb(tick))
     return path
 

@@ -11,9 +11,9 @@ names venues and says which symbols trade where::
     half_days = { "2027-11-26" = "13:00" } # trading dates closing early
 
     [symbols]                              # exact symbols first ...
-    "FENWORTH.KMX" = "HALVERNMOOR"
+    "FENWORTH~KESMOOR" = "HALVERNMOOR"
     [[patterns]]                           # ... then shell-style patterns, in order
-    match = "*.KMX"
+    match = "*~KESMOOR"
     venue = "HALVERNMOOR"
 
 A session whose close is not after its open opens on the *previous* calendar day (an

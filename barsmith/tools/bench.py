@@ -92,7 +92,7 @@ def _per_round(values: Sequence[float]) -> str:
 
 
 def _one_record_feed(path: Path) -> Path:
-    tick = {"sym": "FENWORTH.KMX", "ts": 1_798_794_000_000_000_000, "seq": 1, "kind": "snapshot", "bid_px": 10.0}
+    tick = {"sym": "FENWORTH~KESMOOR", "ts": 1_798_794_000_000_000_000, "seq": 1, "kind": "snapshot", "bid_px": 10.0}
     path.write_bytes(msgpack.packb(tick))
     return path
 

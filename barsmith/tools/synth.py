@@ -1,6 +1,6 @@
 """A seeded synthetic feed for demos and benchmarks.
 
-The scenario is invented: the Kestrelmoor Exchange (venue code ``KMX``) and listings
+The scenario is invented: the Kestrelmoor Exchange (venue code ``KESMOOR``) and listings
 whose names are made-up words. Symbols differ widely in liquidity (message rates
 spread log-uniformly over three orders of magnitude); spreads are one to a few ticks;
 each symbol gets a full snapshot every ``snapshot_every_s`` of event time; a few
@@ -36,7 +36,7 @@ from typing import IO, Any, cast
 
 import msgpack
 
-VENUE = "KMX"
+VENUE = "KESMOOR"
 _NAMES = (
     "FENWORTH", "MARROWAY", "QUILLFERN", "BRASSWICK", "LUMENDALE", "TALLOWMERE",
     "CORVESTRA", "DUNHOLLOW", "EMBERLOCH", "GLIMMERTON", "HAZELCROFT", "IRONVALE",
@@ -98,7 +98,7 @@ def _listings(cfg: SynthConfig, rng: random.Random) -> list[_Listing]:
         liquid = weight >= 30
         listings.append(
             _Listing(
-                symbol=f"{_NAMES[i]}.{VENUE}",
+                symbol=f"{_NAMES[i]}~{VENUE}",
                 rate_per_s=total_rate * weight / sum(weights),
                 tick=tick,
                 mid_ticks=rng.randint(400, 40_000),

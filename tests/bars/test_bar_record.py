@@ -8,7 +8,7 @@ from barsmith.bars.spec import DEFAULT_COLUMNS, parse_specs
 
 def test_as_dict_is_the_column_table_in_column_order() -> None:
     values = (
-        "FENWORTH.KMX", "time:1m", 60, 120, 1.5, 2.0, 1.25, 1.75, 10.0, 16.0, 1.6, 4, 9, 1,
+        "FENWORTH~KESMOOR", "time:1m", 60, 120, 1.5, 2.0, 1.25, 1.75, 10.0, 16.0, 1.6, 4, 9, 1,
         1.7, 1.8, 0.1, 0.12, 0.1, 0.15, True,
     )  # fmt: skip
     bar = Bar(BAR_COLUMNS, values)

@@ -21,7 +21,7 @@ def random_trades(seed: int, n: int) -> list[dict[str, object]]:
     seqs: dict[str, int] = {}
     for _ in range(n):
         ts += rng.randint(0, 9_000_000_000)
-        sym = rng.choice(["FENWORTH.KMX", "MARROWAY.KMX", "QUILLFERN.KMX"])
+        sym = rng.choice(["FENWORTH~KESMOOR", "MARROWAY~KESMOOR", "QUILLFERN~KESMOOR"])
         seqs[sym] = seqs.get(sym, 0) + 1
         recs.append(trade(sym, ts, seqs[sym], round(rng.uniform(90, 110), 2), float(rng.randint(1, 50))))
     return recs

@@ -21,7 +21,7 @@ from barsmith.settings import load_settings
 from barsmith.sinks.kafka import decode_bar, encode_bar
 
 ROOT = Path(__file__).resolve().parents[2]
-SYM = "FENWORTH.KMX"
+SYM = "FENWORTH~KESMOOR"
 
 
 def feed() -> list[dict[str, Any]]:

@@ -251,7 +251,7 @@ def test_replay_reads_the_calendar_file_from_the_settings(tmp_path: Any, feed_fi
     config = tmp_path / "barsmith.toml"
     config.write_text(f'[sessions]\ncalendars_file = "{root / "config" / "calendars.example.toml"}"\n')
     times = [utc(2027, 1, 15, 14, 30) + k * 20 * M for k in range(20)]
-    feed = sorted(trades("FENWORTH.KMX", times) + trades("CORVESTRA.KMX", times), key=lambda rec: rec["ts"])
+    feed = sorted(trades("FENWORTH~KESMOOR", times) + trades("CORVESTRA~KESMOOR", times), key=lambda rec: rec["ts"])
     path = feed_file(feed)
     out = tmp_path / "out"
     args = ["replay", "--quiet", str(path), "--config", str(config), "--bars", "session:30m", "--out", str(out)]
@@ -259,11 +259,11 @@ def test_replay_reads_the_calendar_file_from_the_settings(tmp_path: Any, feed_fi
     frame = pd.read_parquet(out)
     # FENWORTH trades at KESTRELMOOR (New York: 09:30 is 14:30 UTC in January); CORVESTRA
     # at ASHBRIDGE, whose overnight session runs 17:00-16:00 Chicago time (23:00-22:00 UTC).
-    mine = frame[frame["symbol"] == "FENWORTH.KMX"]
+    mine = frame[frame["symbol"] == "FENWORTH~KESMOOR"]
     starts = [utc(2027, 1, 15, 14, 30) + k * 30 * M for k in range(13)]
     assert sorted(stamp.value for stamp in mine["start"]) == starts
     # ASHBRIDGE's half hours from 23:00 UTC fall on the same marks here.
-    theirs = frame[frame["symbol"] == "CORVESTRA.KMX"]
+    theirs = frame[frame["symbol"] == "CORVESTRA~KESMOOR"]
     assert sorted(stamp.value for stamp in theirs["start"]) == starts
     assert set(frame["trading_date"]) == {"2027-01-15"}
 

@@ -17,13 +17,13 @@ def apply(book: SymbolBook, rec: dict[str, object]) -> Outcome:
 
 
 def live_book() -> SymbolBook:
-    book = SymbolBook("FENWORTH.KMX")
+    book = SymbolBook("FENWORTH~KESMOOR")
     apply(book, snap(seq=10, bid_px=10.0, bid_qty=5.0, ask_px=10.5, ask_qty=7.0))
     return book
 
 
 def test_delta_before_first_snapshot_is_accepted_but_resyncing() -> None:
-    book = SymbolBook("FENWORTH.KMX")
+    book = SymbolBook("FENWORTH~KESMOOR")
     assert apply(book, tick(seq=41, bid_px=10.0)) is Outcome.ACCEPTED
     assert book.status is BookStatus.RESYNCING
     assert book.last_seq == 41
@@ -99,6 +99,6 @@ def test_event_time_never_goes_backwards() -> None:
 
 def test_snapshot_trade_fields_are_state_not_a_trade() -> None:
     # Checked at the engine level too (no volume); here: the book ignores them.
-    book = SymbolBook("FENWORTH.KMX")
+    book = SymbolBook("FENWORTH~KESMOOR")
     apply(book, snap(seq=1, bid_px=1.0, ask_px=2.0, trade_px=1.5, trade_qty=10.0))
     assert book.status is BookStatus.LIVE

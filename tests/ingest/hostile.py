@@ -87,7 +87,7 @@ def hostile_bytes(rng: random.Random, kind: str, records: list[bytes]) -> bytes:
 
 def hostile_value(rng: random.Random) -> Any:
     """A well-formed msgpack value that is not a valid tick (nor a batch of them)."""
-    base: dict[str, Any] = {"sym": "JUNK.KMX", "ts": 1, "seq": 1, "kind": "delta"}
+    base: dict[str, Any] = {"sym": "JUNK~KESMOOR", "ts": 1, "seq": 1, "kind": "delta"}
     dropped = rng.choice(list(base))
     choices: list[Any] = [
         {**base, "ts": "yesterday"},

@@ -14,7 +14,7 @@ from barsmith.engine import Engine
 from barsmith.ingest.eventtime import StreamLimits
 from barsmith.ingest.ticks import RejectReason
 
-A, B, C = "FENWORTH.KMX", "MARROWAY.KMX", "QUILLFERN.KMX"
+A, B, C = "FENWORTH~KESMOOR", "MARROWAY~KESMOOR", "QUILLFERN~KESMOOR"
 M = 60 * S
 H = 3600 * S
 YEAR = 365 * 24 * H

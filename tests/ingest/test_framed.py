@@ -215,7 +215,7 @@ def test_recordings_put_one_after_another() -> None:
 
 def test_a_block_above_what_the_reader_takes_is_skipped_unread() -> None:
     small = records(3)
-    huge = msgpack.packb({"sym": "FENWORTH.KMX", "blob": b"\x00" * 200_000})
+    huge = msgpack.packb({"sym": "FENWORTH~KESMOOR", "blob": b"\x00" * 200_000})
     data = file_header() + block(small[0]) + block(huge) + block(small[1] + small[2])
     reader = FrameReader(io.BytesIO(data), block_bytes=4096, max_record_bytes=100_000)
     got = [r for objects, _, _ in reader.batches(10) for r in objects]

@@ -153,7 +153,7 @@ def test_a_bogus_huge_length_is_not_buffered() -> None:
 
 def test_a_record_above_the_size_cap_is_rejected_as_too_large() -> None:
     records = packed(3)
-    big = msgpack.packb({"sym": "FENWORTH.KMX", "blob": b"\x00" * 300_000})
+    big = msgpack.packb({"sym": "FENWORTH~KESMOOR", "blob": b"\x00" * 300_000})
     data = records[0] + big + records[1] + records[2]
     reader = FrameReader(io.BytesIO(data), block_bytes=4096, max_record_bytes=100_000)
     objects, rejects = [], []

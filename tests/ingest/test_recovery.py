@@ -39,7 +39,7 @@ def _ticks_strategy() -> st.SearchStrategy[dict[str, Any]]:
     @st.composite
     def one(draw: st.DrawFn) -> dict[str, Any]:
         rec: dict[str, Any] = {
-            "sym": draw(st.sampled_from(["FENWORTH.KMX", "MARROWAY.KMX", "Q"])),
+            "sym": draw(st.sampled_from(["FENWORTH~KESMOOR", "MARROWAY~KESMOOR", "Q"])),
             "ts": T0 + draw(st.integers(0, 10**12)),
             "seq": draw(st.integers(0, 2**40)),
             "kind": draw(st.sampled_from(["delta", "snapshot"])),
@@ -257,9 +257,9 @@ def test_a_map_header_in_a_batch_items_float_is_no_tick_inside_it(scanner: bool)
     """A batch of valid ticks is one record even when a float of a wire-keys-only item
     holds a map header (0x85) that, with the next item's keys, parses as a tick of its
     own: such an item holds scalars only, as a record on its own does."""
-    flagged = {"sym": "FENWORTH.KMX", "ts": T0, "seq": 0, "kind": "delta", "venue_flags": ["x"]}
+    flagged = {"sym": "FENWORTH~KESMOOR", "ts": T0, "seq": 0, "kind": "delta", "venue_flags": ["x"]}
     trade = {
-        "sym": "FENWORTH.KMX",
+        "sym": "FENWORTH~KESMOOR",
         "ts": T0,
         "seq": 0,
         "kind": "delta",

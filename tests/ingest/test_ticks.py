@@ -19,7 +19,7 @@ def reason_of(rec: Any) -> RejectReason:
 
 def test_valid_delta_with_quotes_and_trade() -> None:
     t = decode_tick(tick(bid_px=10.0, bid_qty=3, ask_px=None, trade_px=10.0, trade_qty=2))
-    assert (t.sym, t.ts, t.seq, t.is_snapshot) == ("FENWORTH.KMX", T0, 1, False)
+    assert (t.sym, t.ts, t.seq, t.is_snapshot) == ("FENWORTH~KESMOOR", T0, 1, False)
     assert t.present == BID_PX | BID_QTY | ASK_PX
     assert t.bid_qty == 3.0 and isinstance(t.bid_qty, float)
     assert t.ask_px is None
@@ -66,7 +66,7 @@ def test_malformed_records_have_a_reason(rec: Any, reason: RejectReason) -> None
 
 
 def test_valid_tick_round_trips_through_its_wire_form() -> None:
-    rec = tick(sym="NEWSYM.KMX", bid_px=1.5, bid_qty=0.0, ask_px=2.0, ask_qty=3.0, trade_px=2.0, trade_qty=1.0)
+    rec = tick(sym="NEWSYM~KESMOOR", bid_px=1.5, bid_qty=0.0, ask_px=2.0, ask_qty=3.0, trade_px=2.0, trade_qty=1.0)
     assert decode_tick(dict(rec)).to_wire() == rec
 
 

@@ -45,7 +45,7 @@ def feed() -> list[list[Any]]:
     parts: list[list[Any]] = [[] for _ in range(PARTITIONS)]
     for record in generate(SynthConfig(messages=8_000, symbols=16, duration_s=900, seed=5)):
         parts[partition_for(symbol_of(record), PARTITIONS)].append(record)
-    parts[0].insert(30, {"sym": "BROKEN.KMX", "seq": 1, "kind": "delta"})  # no ts
+    parts[0].insert(30, {"sym": "BROKEN~KESMOOR", "seq": 1, "kind": "delta"})  # no ts
     parts[1].insert(200, 42)  # not a map
     return parts
 
@@ -307,7 +307,7 @@ async def test_bars_closed_by_the_idle_rule_commit_with_the_next_checkpoint() ->
     checkpoint commits them although no input came (the engine changed, the offset not)."""
     start = (time.time_ns() - 30_000_000_000) // 1_000_000_000 * 1_000_000_000  # whole seconds: 10 bars
     ticks = [
-        {"sym": "FENWORTH.KMX", "ts": start + i * 100_000_000, "seq": i + 1, "kind": "delta",
+        {"sym": "FENWORTH~KESMOOR", "ts": start + i * 100_000_000, "seq": i + 1, "kind": "delta",
          "trade_px": 10.0 + (i % 7) * 0.25, "trade_qty": 1.0}
         for i in range(100)
     ]  # fmt: skip

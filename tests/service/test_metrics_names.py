@@ -87,7 +87,7 @@ def feed() -> list[list[Any]]:
     parts: list[list[Any]] = [[] for _ in range(PARTITIONS)]
     for record in generate(SynthConfig(messages=4_000, symbols=9, duration_s=600, seed=3)):
         parts[partition_for(symbol_of(record), PARTITIONS)].append(record)
-    parts[0].insert(10, {"sym": "BROKEN.KMX", "seq": 1, "kind": "delta"})  # no ts: a reject
+    parts[0].insert(10, {"sym": "BROKEN~KESMOOR", "seq": 1, "kind": "delta"})  # no ts: a reject
     return parts
 
 

@@ -76,7 +76,7 @@ def test_states_are_counted_for_the_gauge() -> None:
 
 
 def test_counters_count_this_process_only_and_survive_release() -> None:
-    records = [trade("FENWORTH.KMX", 1_000 + i, i + 1, 10.0, 1.0) for i in range(5)]
+    records = [trade("FENWORTH~KESMOOR", 1_000 + i, i + 1, 10.0, 1.0) for i in range(5)]
     restored = run_engine(records, finish=False)[1]  # as if restored with 5 records' history
     fresh = run_engine(records[:3], finish=False)[1]
     partitions = Partitions()

@@ -331,7 +331,7 @@ async def test_idle_rule_closes_bars_of_a_quiet_partition(kafka_bootstrap: str, 
     start = (now - 30_000_000_000) // 1_000_000_000 * 1_000_000_000  # whole seconds: 10 bars
     feed = tmp_path / "live.msgpack"
     ticks = [
-        {"sym": "FENWORTH.KMX", "ts": start + i * 100_000_000, "seq": i + 1, "kind": "delta",
+        {"sym": "FENWORTH~KESMOOR", "ts": start + i * 100_000_000, "seq": i + 1, "kind": "delta",
          "trade_px": 10.0 + (i % 7) * 0.25, "trade_qty": 1.0}
         for i in range(100)
     ]  # fmt: skip
@@ -391,15 +391,15 @@ async def test_a_key_other_than_the_symbol_is_counted_and_the_value_decides(
     topic = "keyed-ticks"
     await _create_topic(kafka_bootstrap, topic, partitions=1)
     t0 = 1_798_794_000_000_000_000
-    fen = [{"sym": "FENWORTH.KMX", "ts": t0 + i * 10**9, "seq": i + 1, "kind": "delta",
+    fen = [{"sym": "FENWORTH~KESMOOR", "ts": t0 + i * 10**9, "seq": i + 1, "kind": "delta",
             "trade_px": 10.0, "trade_qty": 1.0} for i in range(6)]  # fmt: skip
-    mar = {"sym": "MARROWAY.KMX", "ts": t0, "seq": 1, "kind": "delta", "trade_px": 20.0, "trade_qty": 2.0}
+    mar = {"sym": "MARROWAY~KESMOOR", "ts": t0, "seq": 1, "kind": "delta", "trade_px": 20.0, "trade_qty": 2.0}
     sends = [
-        (b"FENWORTH.KMX", fen[0]),
-        (b"MARROWAY.KMX", fen[1]),  # another symbol's key: counted
-        (b"QUILLFERN.KMX", fen[2]),  # counted
-        (b"MARROWAY.KMX", [fen[3], mar]),  # a batch keyed by one of its symbols: fine
-        (b"QUILLFERN.KMX", [fen[4], mar | {"seq": 2}]),  # none of them: counted
+        (b"FENWORTH~KESMOOR", fen[0]),
+        (b"MARROWAY~KESMOOR", fen[1]),  # another symbol's key: counted
+        (b"QUILLFERN~KESMOOR", fen[2]),  # counted
+        (b"MARROWAY~KESMOOR", [fen[3], mar]),  # a batch keyed by one of its symbols: fine
+        (b"QUILLFERN~KESMOOR", [fen[4], mar | {"seq": 2}]),  # none of them: counted
         (None, fen[5]),  # no key: nothing to compare
     ]
     producer = AIOKafkaProducer(bootstrap_servers=kafka_bootstrap)
@@ -417,7 +417,7 @@ async def test_a_key_other_than_the_symbol_is_counted_and_the_value_decides(
     assert samples(text)[("barsmith_key_mismatches_total", (("partition", f"{topic}[0]"),))] == 3
     bars = pd.read_parquet(tmp_path / "service")
     # Every tick landed on its own symbol, whatever its key said.
-    assert bars.groupby("symbol")["trades"].sum().to_dict() == {"FENWORTH.KMX": 6, "MARROWAY.KMX": 2}
+    assert bars.groupby("symbol")["trades"].sum().to_dict() == {"FENWORTH~KESMOOR": 6, "MARROWAY~KESMOOR": 2}
 
 
 async def test_the_readme_reads_the_bus_as_it_shows(kafka_bootstrap: str, small_feed: Path) -> None:
@@ -441,7 +441,7 @@ async def test_the_readme_reads_the_bus_as_it_shows(kafka_bootstrap: str, small_
     lines = done.stdout.splitlines()
     assert len(lines) == len(expected) > 0
     spec, symbol, day, clock = lines[0].split()[:4]
-    assert spec in SPECS and symbol.endswith(".KMX") and day.startswith("2027-01-01") and clock.endswith("+00:00")
+    assert spec in SPECS and symbol.endswith("~KESMOOR") and day.startswith("2027-01-01") and clock.endswith("+00:00")
 
 
 async def test_revisions_on_the_bus_and_in_parquet_are_replays(

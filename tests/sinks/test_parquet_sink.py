@@ -13,7 +13,7 @@ from barsmith.sinks.parquet import ParquetBarSink
 
 
 async def test_files_roll_by_size_and_time_and_are_renamed_when_complete(tmp_path: Path) -> None:
-    bars, _ = run_engine([trade("FENWORTH.KMX", T0 + i * 60_000_000_000, i + 1, 10.0, 1.0) for i in range(50)])
+    bars, _ = run_engine([trade("FENWORTH~KESMOOR", T0 + i * 60_000_000_000, i + 1, 10.0, 1.0) for i in range(50)])
     sink = ParquetBarSink(tmp_path, parse_specs(["time:1m"]), row_group_rows=10, max_file_rows=20, roll_interval_s=0.2)
     await sink.publish("s", bars[:15])  # one row group written; the file stays open
     assert not list(tmp_path.glob("time_1m-*.parquet"))
@@ -39,7 +39,7 @@ async def test_parts_commit_with_checkpoints_and_recover_after_a_crash(tmp_path:
     from barsmith.ingest.ticks import RejectReason
     from barsmith.sinks.parquet import ParquetPartSink
 
-    bars, _ = run_engine([trade("FENWORTH.KMX", T0 + i * 60_000_000_000, i + 1, 10.0, 1.0) for i in range(30)])
+    bars, _ = run_engine([trade("FENWORTH~KESMOOR", T0 + i * 60_000_000_000, i + 1, 10.0, 1.0) for i in range(30)])
     specs = parse_specs(["time:1m"])
     sink = ParquetPartSink(tmp_path, specs, roll_interval_s=3600, carry_max_rows=20)
     await sink.restore("ticks[3]", None, 0)

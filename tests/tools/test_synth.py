@@ -25,7 +25,7 @@ def test_texture_of_the_feed() -> None:
     msgs = list(generate(cfg))
     assert len(msgs) == 40_000
     by_symbol = Counter(m["sym"] for m in msgs)
-    assert len(by_symbol) == 10 and all(sym.endswith("." + VENUE) for sym in by_symbol)
+    assert len(by_symbol) == 10 and all(sym.endswith("~" + VENUE) for sym in by_symbol)
     assert max(by_symbol.values()) > 50 * min(by_symbol.values())  # very different liquidity
     kinds = Counter(m["kind"] for m in msgs)
     assert kinds["snapshot"] > 10
