@@ -113,7 +113,9 @@ V1_CUT = 61
 def v1_feed() -> list[dict[str, Any]]:
     """The feed behind tests/data/checkpoint-v1.msgpack: that file is a real version-1
     checkpoint, written by barsmith 0.1.0's own encoder after the first 61 records, with
-    the exactly-once Parquet sink's state (22 carried bars) in its meta."""
+    the exactly-once Parquet sink's state (22 carried bars) in its meta (its symbols were
+    respelled since, when the demo venue got its own code: string edits, the structure as
+    written)."""
     recs: list[dict[str, Any]] = []
     listings = (("FENWORTH~KESMOOR", 0, 10.0), ("MARROWAY~KESMOOR", 3 * S, 20.0))
     for sym, offset, base in listings:

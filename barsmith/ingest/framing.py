@@ -403,7 +403,9 @@ class FrameReader:
                 if boundary == _NO:
                     return self._skip("a value followed by bytes that are not records", rejects)
             record = obj
-            self._prev_start = -1
+            # A batch's last item can be a record cut inside its last number that took the
+            # next record's first bytes: the batch stays retractable, as a clean record does.
+            self._prev_start = self._base + pos if batch else -1
         else:
             self._prev_start = self._base + pos
         objects.append(record)

@@ -23,7 +23,9 @@ flush, and the metrics. Two strategies: :class:`AtLeastOnce` here, and
 The runner calls all but ``start`` and ``close`` with its lock held, so engines and
 positions change only inside these calls. A strategy may run its own work in tasks
 beside the loop — a transaction's round trip while the next batches are processed,
-say — as long as what touches engines and positions happens inside the calls.
+say — as long as what touches engines and positions happens inside the calls, and
+what it does to a sink beside the loop (``committed`` after a commit) concerns a stream
+that nothing hands bars to meanwhile.
 """
 
 from __future__ import annotations

@@ -169,11 +169,18 @@ class ExactlyOnce:
 
     async def after_batch(self, stream: str) -> None:
         owner = self._owners.get(stream)
-        if owner is None or not self._partitions.is_live(stream) or await self._settle(owner):
+        if owner is None or not self._partitions.is_live(stream):
+            return
+        engine = self._partitions.engines[stream]
+        every = self._checkpoint_settings.every_messages
+        if owner.inflight is not None and engine.stats.records - owner.records_at >= 2 * every:
+            # A commit that stalls (a slow broker) holds the partition back here, under the
+            # lock: otherwise input and waiting bars would pile up behind it without bound.
+            await self._forget_inflight(owner)
+        if await self._settle(owner):
             return
         owner.dirty = True
-        engine = self._partitions.engines[stream]
-        if engine.stats.records - owner.records_at >= self._checkpoint_settings.every_messages:
+        if engine.stats.records - owner.records_at >= every:
             await self.checkpoint(stream)
 
     # -- assignment and revocation ----------------------------------------------------
@@ -248,11 +255,14 @@ class ExactlyOnce:
         if owner.inflight is not None:
             if not final:
                 return False
-            await self._forget_inflight(owner, wait=True)
-        if await self._settle(owner):
+            await self._forget_inflight(owner)
+        # A failed commit in flight rewinds the partition: a periodic checkpoint then has
+        # nothing to do; a final one goes on from the rewound state, if it is live again
+        # (what the failed commit covered is read again by the next run).
+        if await self._settle(owner) and not final:
             return False
         if final and not self._partitions.is_live(stream):
-            return False  # the commit in flight failed: the partition rewinds or stands back
+            return False  # fenced, or its rewind waits for the broker: the next owner continues
         if not self._partitions.is_live(stream):
             raise StateError(f"partition {stream} is {self._partitions.state(stream)}: only a live one checkpoints")
         engine = self._partitions.engines[stream]
@@ -324,17 +334,12 @@ class ExactlyOnce:
         finally:
             owner.inflight = None
 
-    async def _forget_inflight(self, owner: PartitionOwner, wait: bool = False) -> None:
-        """Wait for the owner's commit in flight to end (``wait``), or for a cancelled
-        one to wind up."""
+    async def _forget_inflight(self, owner: PartitionOwner) -> None:
+        """Wait for the owner's commit in flight (if any) to end, however it ends; a
+        cancellation of the caller itself still propagates."""
         task = owner.inflight
-        if task is None:
-            return
-        if wait:
+        if task is not None:
             await asyncio.wait([task])
-        else:
-            with contextlib.suppress(asyncio.CancelledError):
-                await task
 
     async def _settle(self, owner: PartitionOwner) -> bool:
         """Handle a failure of the commit that was in flight: True when there was one

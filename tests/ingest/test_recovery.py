@@ -273,3 +273,24 @@ def test_a_map_header_in_a_batch_items_float_is_no_tick_inside_it(scanner: bool)
     got = [w for _, value in records for item in items_of(value) if (w := wire(item)) is not None]
     assert got == [wire(flagged), wire(flagged), wire(trade), wire(flagged)]
     assert not [r for r in rejects if r.size > 1]
+
+
+@pytest.mark.parametrize("scanner", SCANNER_MODES, ids=lambda s: "scanner" if s else "general")
+@pytest.mark.parametrize("cut", [2, 3, 4])
+def test_a_batch_cut_inside_its_last_number_gives_back_the_record_it_took(scanner: bool, cut: int) -> None:
+    """A batch (one item with a key beyond the wire format) whose last item lost the end
+    of its last float takes the next record's first bytes and still decodes as a valid
+    batch; the bytes after it are then no record, so it is taken back as damage and the
+    records after it are read whole."""
+    flagged = {"sym": "FENWORTH~KESMOOR", "ts": T0, "seq": 1, "kind": "delta", "venue_flags": ["x"]}
+    last = {"sym": "FENWORTH~KESMOOR", "ts": T0, "seq": 2, "kind": "delta", "trade_qty": 1.0, "trade_px": 10.25}
+    after = [
+        {"sym": "MARROWAY~KESMOOR", "ts": T0 + 1, "seq": 3, "kind": "delta", "trade_px": 11.0, "trade_qty": 2.0},
+        {"sym": "QUILLFERN~KESMOOR", "ts": T0 + 2, "seq": 4, "kind": "delta", "trade_px": 12.0, "trade_qty": 3.0},
+    ]
+    batch = msgpack.packb([flagged, last])
+    data = batch[:-cut] + b"".join(msgpack.packb(r) for r in after)
+    records, rejects = read_all(data, 1, 1, scanner)
+    got = [w for _, value in records for item in items_of(value) if (w := wire(item)) is not None]
+    assert got == [wire(r) for r in after]
+    assert [(r.offset, r.size) for r in rejects] == [(0, len(batch) - cut)]
