@@ -291,8 +291,22 @@ def test_fenced_partition_is_taken_back_from_its_checkpoint(kafka_bootstrap: str
     port = free_port_pair()
     proc = spawn([*service_args(kafka_bootstrap, topic, "g-fence", out, port), "--exit-when-idle", "20s"], log)
 
+    # Fence the partition of the demo's busiest listing: it has input after the fence.
+    import gzip
+    from collections import Counter
+
+    from barsmith.bus import partition_for
+    from barsmith.ingest.framing import FrameReader
+
+    with gzip.open(DEMO) as handle:
+        listings = Counter(
+            getattr(r, "sym", None) for batch, _, _ in FrameReader(handle).batches(10_000) for r in batch
+        )
+    busiest = max((n, sym) for sym, n in listings.items() if isinstance(sym, str))[1]
+    fenced = partition_for(busiest, 8)
+
     async def fence() -> None:
-        zombie = AIOKafkaProducer(bootstrap_servers=kafka_bootstrap, transactional_id=f"g-fence.{topic}.3")
+        zombie = AIOKafkaProducer(bootstrap_servers=kafka_bootstrap, transactional_id=f"g-fence.{topic}.{fenced}")
         await zombie.start()  # init_transactions: bumps the epoch, aborts the service's open transaction
         await zombie.stop()
 
