@@ -140,19 +140,8 @@ def _event(listing: _Listing, ts: int, cfg: SynthConfig, rng: random.Random) -> 
         _flow_trade(listing, msg, cfg, rng)
     elif roll < cfg.trade_share:
         buy = rng.random() < 0.5
-        side_qty = listing.ask_qty if buy else listing.bid_qty
-        qty = float(rng.choice((1, 5, 10, 25, 50, 100, 100, 200, 300, 500)))
-        qty = min(qty, side_qty) if side_qty > 0 else qty
-        px_ticks = listing.mid_ticks + (listing.half_spread_ticks if buy else -listing.half_spread_ticks)
-        msg["trade_px"] = _px(listing, px_ticks)
-        msg["trade_qty"] = qty
-        # The trade consumes liquidity at the touch, in the same message.
-        if buy:
-            listing.ask_qty = max(0.0, listing.ask_qty - qty) or float(rng.randint(1, 30) * 100)
-            msg["ask_qty"] = listing.ask_qty
-        else:
-            listing.bid_qty = max(0.0, listing.bid_qty - qty) or float(rng.randint(1, 30) * 100)
-            msg["bid_qty"] = listing.bid_qty
+        qty = _trade_at_touch(listing, msg, buy, float(rng.choice((1, 5, 10, 25, 50, 100, 100, 200, 300, 500))))
+        _consume_touch(listing, msg, buy, qty, rng)
     elif roll < 0.45:
         # The mid moves by a tick; both sides re-quote.
         listing.mid_ticks = max(listing.half_spread_ticks + 5, listing.mid_ticks + rng.choice((-1, 1)))
@@ -179,12 +168,7 @@ def _flow_trade(listing: _Listing, msg: dict[str, Any], cfg: SynthConfig, rng: r
         msg["trade_px"] = _px(listing, listing.mid_ticks)  # a midpoint match: the touch is untouched
         msg["trade_qty"] = qty
         return
-    side_qty = listing.ask_qty if buy else listing.bid_qty
-    qty = min(qty, side_qty) if side_qty > 0 else qty
-    msg["trade_px"] = _px(
-        listing, listing.mid_ticks + (listing.half_spread_ticks if buy else -listing.half_spread_ticks)
-    )
-    msg["trade_qty"] = qty
+    qty = _trade_at_touch(listing, msg, buy, qty)
     if rng.random() < cfg.impact_share:
         # The trade takes the touch and the quote moves its way, in the same message.
         step = 1 if buy else -1
@@ -192,7 +176,25 @@ def _flow_trade(listing: _Listing, msg: dict[str, Any], cfg: SynthConfig, rng: r
         listing.bid_qty = float(rng.randint(1, 40) * 100)
         listing.ask_qty = float(rng.randint(1, 40) * 100)
         msg.update(_quote_fields(listing))
-    elif buy:
+    else:
+        _consume_touch(listing, msg, buy, qty, rng)
+
+
+def _trade_at_touch(listing: _Listing, msg: dict[str, Any], buy: bool, qty: float) -> float:
+    """A trade at the touch (the ask for a buy), no larger than what rests there when
+    anything does; returns its quantity."""
+    side_qty = listing.ask_qty if buy else listing.bid_qty
+    qty = min(qty, side_qty) if side_qty > 0 else qty
+    px_ticks = listing.mid_ticks + (listing.half_spread_ticks if buy else -listing.half_spread_ticks)
+    msg["trade_px"] = _px(listing, px_ticks)
+    msg["trade_qty"] = qty
+    return qty
+
+
+def _consume_touch(listing: _Listing, msg: dict[str, Any], buy: bool, qty: float, rng: random.Random) -> None:
+    """The trade consumes liquidity at the touch, in the same message (an emptied side is
+    refilled)."""
+    if buy:
         listing.ask_qty = max(0.0, listing.ask_qty - qty) or float(rng.randint(1, 30) * 100)
         msg["ask_qty"] = listing.ask_qty
     else:
