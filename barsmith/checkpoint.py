@@ -137,6 +137,7 @@ def _respell(payload: dict[str, Any]) -> None:
     engine = payload.get("engine")
     if isinstance(engine, dict):
         if isinstance(engine.get("stats"), list):
+            # Engine.to_state's counters: from index 7 on, the per-spec ones (bars, outside).
             engine["stats"] = [
                 {new.get(k, k): v for k, v in part.items()} if isinstance(part, dict) and i >= 7 else part
                 for i, part in enumerate(engine["stats"])

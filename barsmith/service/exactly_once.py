@@ -142,7 +142,7 @@ class ExactlyOnce:
         for owner in owners:
             if owner.inflight is not None:
                 owner.inflight.cancel()  # a commit cut short is one the broker aborts
-        await asyncio.gather(*(self._forget_inflight(owner) for owner in owners))
+        await asyncio.gather(*(self._await_inflight(owner) for owner in owners))
         await asyncio.gather(*(self._drop_transaction(owner) for owner in owners))
         await self._bus.close()
 
@@ -176,7 +176,7 @@ class ExactlyOnce:
         if owner.inflight is not None and engine.stats.records - owner.records_at >= 2 * every:
             # A commit that stalls (a slow broker) holds the partition back here, under the
             # lock: otherwise input and waiting bars would pile up behind it without bound.
-            await self._forget_inflight(owner)
+            await self._await_inflight(owner)
         if await self._settle(owner):
             return
         owner.dirty = True
@@ -255,7 +255,7 @@ class ExactlyOnce:
         if owner.inflight is not None:
             if not final:
                 return False
-            await self._forget_inflight(owner)
+            await self._await_inflight(owner)
         # A failed commit in flight rewinds the partition: a periodic checkpoint then has
         # nothing to do; a final one goes on from the rewound state, if it is live again
         # (what the failed commit covered is read again by the next run).
@@ -327,14 +327,12 @@ class ExactlyOnce:
         call, which handles it under the lock (engines and positions change only there)."""
         try:
             await self._commit(owner, data, offset, sink_states, records, started, False)
-        except asyncio.CancelledError:
-            raise
-        except Exception as exc:
+        except Exception as exc:  # a cancellation (close) is no failure and propagates
             owner.failure = exc
         finally:
             owner.inflight = None
 
-    async def _forget_inflight(self, owner: PartitionOwner) -> None:
+    async def _await_inflight(self, owner: PartitionOwner) -> None:
         """Wait for the owner's commit in flight (if any) to end, however it ends; a
         cancellation of the caller itself still propagates."""
         task = owner.inflight
