@@ -36,9 +36,12 @@ enum field {
     F_BIDS, F_ASKS
 };
 
-/* Depth levels of one side taken here (more go to the general path, which checks
- * each price once with a set). */
-#define MAX_SCANNED_LEVELS 64
+/* Depth levels of one side taken here: up to MAX_SCANNED_LEVELS (more go to the general
+ * path, which checks each price once with a set); up to STACK_LEVELS without a heap
+ * buffer; up to SORT_CHECKED_LEVELS checked for a repeated price pair by pair. */
+#define MAX_SCANNED_LEVELS 4096
+#define STACK_LEVELS 64
+#define SORT_CHECKED_LEVELS 16
 
 enum value_kind { V_NIL, V_INT, V_FLOAT, V_STR };
 
@@ -249,24 +252,22 @@ float_or_none(int has, double value)
     return PyFloat_FromDouble(value);
 }
 
-/* Depth levels at data[pos]: an array of [px, qty] pairs, numbers with px > 0 and
- * qty >= 0, each price once, into *out (a new list of (px, qty) float tuples); *zero
- * is set when a level has qty 0 (refused in a snapshot). Returns the position after
- * them, NOT_SIMPLE, INCOMPLETE or PY_FAILED. */
-static Py_ssize_t
-scan_levels(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out, int *zero)
+/* Depth levels at data[pos]: an array (fixarray or array 16) of [px, qty] pairs,
+ * numbers with px > 0 and qty >= 0, each price once, into *out (a new list of
+ * (px, qty) float tuples); *zero is set when a level has qty 0 (refused in a snapshot).
+ * Returns the position after them, NOT_SIMPLE, INCOMPLETE or PY_FAILED. */
+static int
+compare_doubles(const void *a, const void *b)
 {
-    if (pos >= end) {
-        return INCOMPLETE;
-    }
-    uint8_t header = data[pos];
-    if (header < 0x90 || header > 0x9F) {
-        return NOT_SIMPLE; /* longer lists: the general path */
-    }
-    Py_ssize_t count = header - 0x90;
-    pos += 1;
-    double prices[MAX_SCANNED_LEVELS];
-    double quantities[MAX_SCANNED_LEVELS];
+    double x = *(const double *)a;
+    double y = *(const double *)b;
+    return (x > y) - (x < y);
+}
+
+static Py_ssize_t
+scan_level_pairs(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, Py_ssize_t count, double *prices,
+                 double *quantities, int *zero)
+{
     for (Py_ssize_t i = 0; i < count; i++) {
         if (pos >= end) {
             return INCOMPLETE;
@@ -300,9 +301,11 @@ scan_levels(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out,
         if (!(pair[0] > 0.0) || !(pair[1] >= 0.0)) {
             return NOT_SIMPLE;
         }
-        for (Py_ssize_t k = 0; k < i; k++) {
-            if (prices[k] == pair[0]) {
-                return NOT_SIMPLE; /* a price listed twice: the general path rejects it */
+        if (count <= SORT_CHECKED_LEVELS) {
+            for (Py_ssize_t k = 0; k < i; k++) {
+                if (prices[k] == pair[0]) {
+                    return NOT_SIMPLE; /* a price listed twice: the general path rejects it */
+                }
             }
         }
         if (pair[1] == 0.0) {
@@ -311,20 +314,97 @@ scan_levels(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out,
         prices[i] = pair[0];
         quantities[i] = pair[1];
     }
-    PyObject *list = PyList_New(count);
-    if (list == NULL) {
-        return PY_FAILED;
+    return pos;
+}
+
+/* Whether a price is listed twice, for long lists: sorted copy, neighbours compared
+ * (O(n log n), where comparing every pair would be O(n²)). -1: out of memory. */
+static int
+has_repeated_price(const double *prices, Py_ssize_t count)
+{
+    double *sorted = PyMem_Malloc((size_t)count * sizeof(double));
+    if (sorted == NULL) {
+        PyErr_NoMemory();
+        return -1;
     }
-    for (Py_ssize_t i = 0; i < count; i++) {
+    memcpy(sorted, prices, (size_t)count * sizeof(double));
+    qsort(sorted, (size_t)count, sizeof(double), compare_doubles);
+    int repeated = 0;
+    for (Py_ssize_t i = 1; i < count; i++) {
+        if (sorted[i] == sorted[i - 1]) {
+            repeated = 1;
+            break;
+        }
+    }
+    PyMem_Free(sorted);
+    return repeated;
+}
+
+static Py_ssize_t
+scan_levels(const uint8_t *data, Py_ssize_t pos, Py_ssize_t end, PyObject **out, int *zero)
+{
+    if (pos >= end) {
+        return INCOMPLETE;
+    }
+    uint8_t header = data[pos];
+    Py_ssize_t count;
+    if (header >= 0x90 && header <= 0x9F) {
+        count = header - 0x90;
+        pos += 1;
+    } else if (header == 0xDC) {
+        if (pos + 3 > end) {
+            return INCOMPLETE;
+        }
+        count = ((Py_ssize_t)data[pos + 1] << 8) | data[pos + 2];
+        if (count > MAX_SCANNED_LEVELS) {
+            return NOT_SIMPLE; /* longer lists: the general path */
+        }
+        pos += 3;
+    } else {
+        return NOT_SIMPLE; /* array 32, or not an array: the general path */
+    }
+    double stack_prices[STACK_LEVELS];
+    double stack_quantities[STACK_LEVELS];
+    double *prices = stack_prices;
+    double *quantities = stack_quantities;
+    if (count > STACK_LEVELS) {
+        prices = PyMem_Malloc(2 * (size_t)count * sizeof(double));
+        if (prices == NULL) {
+            PyErr_NoMemory();
+            return PY_FAILED;
+        }
+        quantities = prices + count;
+    }
+    Py_ssize_t result = scan_level_pairs(data, pos, end, count, prices, quantities, zero);
+    if (result >= 0 && count > SORT_CHECKED_LEVELS) {
+        int repeated = has_repeated_price(prices, count);
+        if (repeated != 0) {
+            result = repeated < 0 ? PY_FAILED : NOT_SIMPLE; /* a repeated price: the general path rejects it */
+        }
+    }
+    PyObject *list = NULL;
+    if (result >= 0) {
+        list = PyList_New(count);
+        if (list == NULL) {
+            result = PY_FAILED;
+        }
+    }
+    for (Py_ssize_t i = 0; result >= 0 && i < count; i++) {
         PyObject *level = Py_BuildValue("(dd)", prices[i], quantities[i]);
         if (level == NULL) {
-            Py_DECREF(list);
-            return PY_FAILED;
+            Py_CLEAR(list);
+            result = PY_FAILED;
+            break;
         }
         PyList_SET_ITEM(list, i, level);
     }
-    *out = list;
-    return pos;
+    if (prices != stack_prices) {
+        PyMem_Free(prices);
+    }
+    if (result >= 0) {
+        *out = list;
+    }
+    return result;
 }
 
 static Py_ssize_t scan_tick_fields(Scanner *self, const uint8_t *data, Py_ssize_t pos, Py_ssize_t end,

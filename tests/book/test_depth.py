@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import random
 from typing import Any
 
 import pytest
@@ -56,17 +57,73 @@ def test_the_top_of_book_is_a_brute_force_rebuild_of_the_level_history(
         assert book.bid_qty == (model["bids"][best_bid] if best_bid is not None else None)
         assert book.ask_qty == (model["asks"][best_ask] if best_ask is not None else None)
         for side, ladder in (("bids", book.bids), ("asks", book.asks)):
-            assert ladder.prices == sorted(model[side]) and all(q > 0 for q in ladder.qty.values())
-            assert ladder.qty == model[side]
+            assert ladder.levels() == sorted(model[side].items()) and len(ladder) == len(model[side])
 
 
 def test_the_best_levels_and_their_sums() -> None:
     bids = Ladder(True)
     for px, qty in ((10.0, 1.0), (9.5, 2.0), (9.0, 4.0), (10.0, 3.0), (8.5, 8.0), (9.5, 0.0)):
         bids.set(px, qty)
-    assert bids.prices == [8.5, 9.0, 10.0] and bids.best() == 10.0 and bids.best_qty() == 3.0
+    assert bids.levels() == [(8.5, 8.0), (9.0, 4.0), (10.0, 3.0)] and bids.best() == 10.0 and bids.best_qty() == 3.0
     assert (bids.top_qty(2), bids.top_qty(5)) == (7.0, 15.0)
     assert bids.size_after([(7.0, 1.0), (10.0, 0.0), (11.0, 0.0)]) == 3
+
+
+OPS = st.lists(
+    st.tuples(st.integers(1, 400).map(lambda n: n * 0.25), st.sampled_from([0.0, 0.0, 1.0, 3.0, 0.5])),
+    max_size=300,
+)
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.booleans(), st.lists(st.tuples(PRICES, st.sampled_from([1.0, 2.0]))), OPS, st.integers(1, 12))
+def test_a_ladder_is_a_sorted_map_of_its_levels(
+    descending: bool, start: list[tuple[float, float]], ops: list[tuple[float, float]], n: int
+) -> None:
+    """Random level changes against a plain dict (the brute force): every read agrees."""
+    ladder = Ladder(descending)
+    model = dict(start)
+    ladder.replace(list(model.items()))
+    for px, qty in ops:
+        ladder.set(px, qty)
+        if qty > 0:
+            model[px] = qty
+        else:
+            model.pop(px, None)
+        best_first = sorted(model, reverse=descending)
+        assert ladder.best() == (best_first[0] if best_first else None)
+        assert ladder.best_qty() == (model[best_first[0]] if best_first else None)
+        assert ladder.top_qty(n) == sum(model[px] for px in best_first[:n])  # summed best first, as the ladder
+    assert ladder.levels() == sorted(model.items()) and len(ladder) == len(model)
+    removals = [(px, 0.0) for px in list(model)[:3]]
+    assert ladder.size_after([*removals, (1e6, 1.0)]) == len(model) - len(removals) + 1
+
+
+def test_adding_or_removing_a_level_walks_o_log_levels() -> None:
+    """The cost of a level change is the links its walk follows (not a timing): the mean
+    over every level of a side grows with log(levels), far from the x256 of a shift."""
+    rng = random.Random(11)
+
+    def mean_steps(size: int) -> float:
+        ladder = Ladder(True)
+        prices = [100.0 + i * 0.01 for i in range(size)]
+        rng.shuffle(prices)
+        for px in prices:
+            ladder.set(px, 1.0)
+        return sum(ladder.search_steps(px) for px in prices) / size
+
+    small, large = mean_steps(64), mean_steps(64 * 256)
+    # A skip list with towers growing at 1/4 walks about 4·log4(levels) links: ~12 and ~28 here.
+    assert large < 3.5 * small, (small, large)
+    snapshot = Ladder(False)  # a side built whole, as a snapshot builds it
+    snapshot.replace([(100.0 + i, 1.0) for i in range(64 * 256)])
+    assert sum(snapshot.search_steps(100.0 + i) for i in range(0, 64 * 256, 16)) / 1024 < 3.5 * small
+    ladder = Ladder(False)
+    for i in range(5000):
+        ladder.set(100.0 + i, 1.0)  # prices in order: the worst case for a structure that balances by price
+    for i in range(0, 5000, 2):
+        ladder.set(100.0 + i, 0.0)
+    assert ladder.best() == 101.0 and len(ladder) == 2500 and ladder.search_steps(5099.0) < 60
 
 
 @pytest.mark.parametrize(
@@ -148,7 +205,7 @@ def test_depth_books_survive_checkpoints() -> None:
     first.take_rejects()
     second, _ = decode_checkpoint(encode_checkpoint(first), specs, 0, StreamLimits(max_depth_levels=5))
     book = second.book(SYM)
-    assert book is not None and book.depth and book.bids.prices == [9.8, 9.9, 10.2, 10.25]
+    assert book is not None and book.depth and [px for px, _ in book.bids.levels()] == [9.8, 9.9, 10.2, 10.25]
     second.process(records[5:], list(range(5, len(records))), "t")
     second.finish()
     got += second.take_bars()

@@ -12,6 +12,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from barsmith.ingest.fastwire import INCOMPLETE, NOT_SIMPLE, new_scanner
+from barsmith.ingest.framing import RepeatedKeyError, unpack_value
 from barsmith.ingest.ticks import MalformedTickError, Tick, decode_tick
 
 # The scanner is C; a checkout tested without building it has none (CI builds it and
@@ -72,7 +73,14 @@ level = st.one_of(
     st.lists(prices, max_size=3),
     numbers,
 )
-levels = st.one_of(st.lists(level, max_size=17), numbers)
+# Long sides (array 16 on the wire, past the stack buffer and the pairwise price check),
+# valid pairs whose prices come from a small set, so some repeat.
+long_side = st.lists(
+    st.tuples(st.integers(1, 120).map(lambda n: n * 0.5), st.sampled_from([0.0, 1.0, 2.5, 3])).map(list),
+    min_size=15,
+    max_size=90,
+)
+levels = st.one_of(st.lists(level, max_size=17), long_side, numbers)
 
 
 def same(a: Any, b: Any) -> bool:
@@ -194,10 +202,11 @@ def test_a_repeated_key_takes_the_general_path() -> None:
         msgpack.unpackb(record, raw=False)
     assert scanner().scan_record(record, 0) == NOT_SIMPLE
     assert scanner().scan_value(record) is None
-    # A repeated key with valid values is still decoded the same way, the general way.
+    # A repeated key with valid values is refused too, by the general path: each key once.
     twice = bytes([0x85]) + b"\xa3seq\x07" + body
     assert scanner().scan_record(twice, 0) == NOT_SIMPLE
-    assert decode_tick(msgpack.unpackb(twice)).seq == 1
+    with pytest.raises(RepeatedKeyError, match="'seq' twice"):
+        unpack_value(twice)
 
 
 def _scan_loop(
@@ -264,7 +273,13 @@ def test_scanned_ticks_are_left_out_of_the_cyclic_collector() -> None:
         ({"kind": "snapshot", "bids": [[10.0, 0.0]]}, False),  # a snapshot level needs a quantity
         ({"bids": [[10.0, 1.0], [10.0, 2.0]]}, False),  # a price twice
         ({"bids": [[10.0, 1.0]], "ask_px": 10.5}, False),  # mixed book forms
-        ({"bids": [[10.0 + i, 1.0] for i in range(16)]}, False),  # beyond a fixarray: the general path
+        ({"bids": [[10.0 + i, 1.0] for i in range(16)]}, True),  # array 16 on the wire
+        ({"bids": [[10.0 + i, 1.0] for i in range(65)]}, True),  # past the stack buffer
+        ({"bids": [[10.0 + i, 1.0] for i in range(4096)]}, True),  # the most levels taken here
+        ({"bids": [[10.0 + i, 1.0] for i in range(4097)]}, False),  # beyond: the general path
+        ({"bids": [[10.0 + i, 1.0] for i in range(17)] + [[12.0, 5.0]]}, False),  # a price twice, sort-checked
+        ({"bids": [[10.0 + i, 1.0] for i in range(70)] + [[10.0, 5.0]]}, False),  # the same, heap buffer
+        ({"kind": "snapshot", "asks": [[10.0 + i, float(i % 40)] for i in range(80)]}, False),  # a qty 0
     ],
 )
 def test_depth_levels_on_the_fast_path(fields: dict[str, Any], fast: bool) -> None:
