@@ -147,11 +147,38 @@ class _Span:
         return FramingReject(self.offset, self.reason, detail, bytes(self.raw), size)
 
 
+class RepeatedKeyError(ValueError):
+    """A msgpack map that names one key twice."""
+
+
+def unique_keys(pairs: list[tuple[Any, Any]]) -> dict[Any, Any]:
+    """A decoded map's pairs as a dict, refusing a key named twice. msgpack itself keeps
+    the last value; barsmith cannot tell which one the sender meant, and in a damaged
+    file such a map is often two records run together (damage that began a map, whose
+    count then took in the pairs of the valid record after it), so it is not a record."""
+    result = dict(pairs)
+    if len(result) != len(pairs):
+        seen: set[Any] = set()
+        for key, _ in pairs:
+            if key in seen:
+                raise RepeatedKeyError(f"a map names the key {key!r} twice")
+            seen.add(key)
+    return result
+
+
+def unpack_value(value: bytes) -> Any:
+    """One whole msgpack value under barsmith's rules (each map key once); raises
+    ValueError (or msgpack's own errors) otherwise. For a Kafka record value."""
+    return msgpack.unpackb(value, raw=False, strict_map_key=False, object_pairs_hook=unique_keys)
+
+
 def new_unpacker(max_record_bytes: int = DEFAULT_MAX_RECORD_BYTES) -> msgpack.Unpacker:
-    """An unpacker with barsmith's limits (also used for Kafka record values)."""
+    """An unpacker with barsmith's limits and rules (each map key once; also used for
+    Kafka record values)."""
     return msgpack.Unpacker(
         raw=False,
         strict_map_key=False,
+        object_pairs_hook=unique_keys,
         max_buffer_size=max_record_bytes,
         max_str_len=max_record_bytes,
         max_bin_len=max_record_bytes,

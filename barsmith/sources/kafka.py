@@ -23,7 +23,7 @@ from barsmith.bus.clients import new_consumer, start_client
 from barsmith.bus.topics import stream_name
 from barsmith.errors import StateError, describe_error
 from barsmith.ingest.fastwire import new_scanner
-from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, MAX_KEPT_BYTES, new_unpacker
+from barsmith.ingest.framing import DEFAULT_MAX_RECORD_BYTES, MAX_KEPT_BYTES, new_unpacker, unpack_value
 from barsmith.ingest.rejects import Reject
 from barsmith.ingest.ticks import RejectReason, Tick
 from barsmith.settings import KafkaSettings
@@ -289,7 +289,6 @@ class KafkaSource:
         values: list[Any] = []
         positions: list[int] = []
         rejects: list[Reject] = []
-        unpackb = msgpack.unpackb
         scan = self._scanner.scan_value if self._scanner is not None else None
         keys = self._keys
         max_bytes = self._max_record_bytes
@@ -307,7 +306,7 @@ class KafkaSource:
             else:
                 try:
                     # The general way; the checked decoder below explains failures precisely.
-                    decoded = unpackb(value, raw=False, strict_map_key=False)
+                    decoded = unpack_value(value)
                 except Exception:
                     try:
                         decoded = decode_value(record.value)

@@ -276,6 +276,25 @@ def test_a_map_header_in_a_batch_items_float_is_no_tick_inside_it(scanner: bool)
 
 
 @pytest.mark.parametrize("scanner", SCANNER_MODES, ids=lambda s: "scanner" if s else "general")
+def test_a_map_that_names_a_key_twice_is_damage_not_a_record(scanner: bool) -> None:
+    """Damage that begins a map (here seven pairs: sym, then a ts cut short) whose count
+    takes in the pairs of the valid record after it decodes, with msgpack's last-value-wins,
+    as that record under another offset. Each key once is the rule: the map is damage and
+    the valid record is read at its own offset (found by the recovery property test)."""
+    valid = {"sym": "FENWORTH~KESMOOR", "ts": T0, "seq": 0, "kind": "delta", "ask_qty": None}
+    damage = b"\x94\x87\xa3sym\xa1Q\xa2ts\xcf\x18" + bytes(6)  # ts lacks its last byte
+    after = {"sym": "FENWORTH~KESMOOR", "ts": T0, "seq": 1, "kind": "delta"}
+    data = b"\x00" + damage + msgpack.packb(valid) + msgpack.packb(after)
+    records, rejects = read_all(data, 1, 1, scanner)
+    start = 1 + len(damage)
+    assert [(off, wire(value)) for off, value in records if wire(value) is not None] == [
+        (start, wire(valid)),
+        (start + len(msgpack.packb(valid)), wire(after)),
+    ]
+    assert [(r.offset, r.size) for r in rejects] == [(0, start)]  # the 0 before it too: no record follows it
+
+
+@pytest.mark.parametrize("scanner", SCANNER_MODES, ids=lambda s: "scanner" if s else "general")
 @pytest.mark.parametrize("cut", [2, 3, 4])
 def test_a_batch_cut_inside_its_last_number_gives_back_the_record_it_took(scanner: bool, cut: int) -> None:
     """A batch (one item with a key beyond the wire format) whose last item lost the end

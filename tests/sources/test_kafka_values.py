@@ -32,3 +32,15 @@ def test_a_value_above_the_size_cap_is_rejected_undecoded() -> None:
     assert "max_record_bytes" in batch.rejects[0].detail and len(batch.rejects[0].record) <= 4096
     # Under the default cap the same value is an ordinary batch.
     assert KafkaSource(KafkaSettings())._decode("ticks[0]", [FakeRecord(11, big)]).positions == [11]
+
+
+def test_a_value_whose_map_names_a_key_twice_is_rejected() -> None:
+    """Each key once (msgpack itself would keep the last value): the value is refused with
+    the key named, and the values beside it are untouched."""
+    source = KafkaSource(KafkaSettings())
+    good = msgpack.packb(tick(ts=T0, seq=1))
+    twice = bytes([0x85]) + b"\xa3seq\x07" + good[1:]  # seq, then the tick's own four pairs
+    batch = source._decode("ticks[0]", [FakeRecord(5, good), FakeRecord(6, twice), FakeRecord(7, good)])
+    assert batch.positions == [5, 7]
+    assert [(r.position, r.reason) for r in batch.rejects] == [(6, RejectReason.NOT_MSGPACK)]
+    assert "'seq' twice" in batch.rejects[0].detail
