@@ -187,7 +187,10 @@ class MemoryCheckpointBus:
     """A test double of :class:`CheckpointBus`. A commit stores the checkpoint in
     ``checkpoints`` (stream → latest) and the offset in ``group_offsets`` (stream →
     next offset: the consumer group's, which an in-memory source reads), together.
-    ``fail_next(stream, exc)`` makes the stream's next commit raise ``exc``;
+    ``fail_next(stream, exc)`` makes the stream's next commit raise ``exc``; with
+    ``landed=True`` the commit lands first (a commit that timed out on the client after
+    the broker took it), and ``on_landed(stream)``, when set, is awaited then: what the
+    transaction wrote becomes visible, as on the broker;
     ``fence(stream)`` plays another producer taking the stream's transactional id;
     ``after_commit``, when set, is called after every commit (a test's kill switch that
     acts at a commit, not at whatever moment a polling test wakes up); ``before_commit``,
@@ -198,8 +201,9 @@ class MemoryCheckpointBus:
         self.checkpoints: dict[str, bytes] = {}
         self.group_offsets: dict[str, int] = group_offsets if group_offsets is not None else {}
         self.commits: list[tuple[str, int]] = []  # (stream, offset) per committed transaction
-        self._failures: dict[str, list[BaseException]] = {}
+        self._failures: dict[str, list[tuple[BaseException, bool]]] = {}
         self._open: dict[str, _MemoryTransaction] = {}
+        self.on_landed: Callable[[str], Awaitable[None]] | None = None
         self.after_commit: Callable[[], None] | None = None
         self.before_commit: Callable[[str], Awaitable[None]] | None = None
 
@@ -217,8 +221,8 @@ class MemoryCheckpointBus:
     async def load(self, streams: Sequence[str]) -> dict[str, bytes]:
         return {stream: self.checkpoints[stream] for stream in streams if stream in self.checkpoints}
 
-    def fail_next(self, stream: str, exc: BaseException) -> None:
-        self._failures.setdefault(stream, []).append(exc)
+    def fail_next(self, stream: str, exc: BaseException, landed: bool = False) -> None:
+        self._failures.setdefault(stream, []).append((exc, landed))
 
     def fence(self, stream: str) -> None:
         transaction = self._open.pop(stream, None)
@@ -246,14 +250,23 @@ class _MemoryTransaction:
         if self._bus.before_commit is not None:
             await self._bus.before_commit(self._stream)
             self._check()
-        failures = self._bus._failures.get(self._stream)
+        bus = self._bus
+        failures = bus._failures.get(self._stream)
         if failures:
-            raise failures.pop(0)
+            exc, landed = failures.pop(0)
+            if landed:
+                self._land(checkpoint, offset)
+                if bus.on_landed is not None:
+                    await bus.on_landed(self._stream)
+            raise exc
+        self._land(checkpoint, offset)
+        if bus.after_commit is not None:
+            bus.after_commit()
+
+    def _land(self, checkpoint: bytes, offset: int) -> None:
         self._bus.checkpoints[self._stream] = checkpoint
         self._bus.group_offsets[self._stream] = offset
         self._bus.commits.append((self._stream, offset))
-        if self._bus.after_commit is not None:
-            self._bus.after_commit()
 
     async def abort(self) -> None:
         self._check()

@@ -28,8 +28,10 @@ On assignment (``restoring``) the owner reads the partition's latest checkpoint,
 restores the engine and the sinks' staged state, and seeks the source to the
 checkpoint's offset (``live``). When a transaction fails (broker gone, timeout), the
 partition is ``failed``: the owner aborts the transaction and *rewinds* — restores
-the last committed checkpoint and seeks back, so the bars of the aborted transaction
-are built again from the same input. A ``fenced`` owner (another producer took the
+the last committed checkpoint, as stored (read once the abort or a new producer has
+settled the failed transaction: a commit may have landed although the client saw it
+time out), and seeks back, so the bars of the aborted transaction are built again
+from the same input. A ``fenced`` owner (another producer took the
 partition's transactional id) stops touching the partition and waits for the
 revocation; if the group still assigns the partition to this process two session
 timeouts later (the fencer was a zombie, or the broker aborted a transaction that
@@ -396,20 +398,35 @@ class ExactlyOnce:
         housekeeping to retry."""
         await asyncio.gather(*(self._open_transaction(owner) for owner in owners if owner.transaction is None))
         ready = [owner for owner in owners if owner.transaction is not None]
-        assigning = [owner.stream for owner in ready if self._partitions.state(owner.stream) is RESTORING]
-        stored: dict[str, bytes] | None = {}
-        if assigning:
-            stored = None
-            with self._retry_later("cannot read checkpoints"):
-                stored = await self._bus.load(assigning)
+        if not ready:
+            return
+        stored: dict[str, bytes] | None = None
+        with self._retry_later("cannot read checkpoints"):
+            stored = await self._bus.load([owner.stream for owner in ready])
+        if stored is None:
+            return  # the checkpoints decide where each partition goes on: no guessing
         for owner in ready:
             state = self._partitions.state(owner.stream)
             with self._retry_later(f"{owner.stream} ({state}): cannot restore"):
                 if state is FAILED:
+                    self._reconcile(owner, stored.get(owner.stream))
                     await self._restore(owner, "rewind")
-                elif stored is not None:
+                else:
                     group_offset = await self._adopt(owner, stored.get(owner.stream))
                     await self._restore(owner, "assignment", group_offset)
+
+    def _reconcile(self, owner: PartitionOwner, data: bytes | None) -> None:
+        """Before a rewind: the stored checkpoint, read after the new producer fenced the
+        failed one (the broker then has finished or aborted its transaction), is the last
+        committed one. A commit that failed on the client may still have landed (a timeout
+        after the broker took it); rewinding to the checkpoint before it would commit that
+        stretch of bars a second time."""
+        if data is not None and data != owner.checkpoint:
+            log.warning(
+                "%s: the commit that failed had landed (its checkpoint is stored): rewinding to it instead",
+                owner.stream,
+            )
+            owner.checkpoint = data
 
     async def _open_transaction(self, owner: PartitionOwner) -> None:
         with self._retry_later(f"{owner.stream}: cannot start its producer"):

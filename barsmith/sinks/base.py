@@ -85,7 +85,9 @@ class MemoryCheckpointedSink(MemorySink):
     become visible in ``bars`` (``rejects``) only when a checkpoint commits them, as on
     the bus with ``read_committed``; a restore or a release forgets what was not.
     ``fail_next_publish(exc)`` makes the next publish fail as a send to a broker that
-    went away does (a :class:`~barsmith.errors.SinkError` raised from ``exc``)."""
+    went away does (a :class:`~barsmith.errors.SinkError` raised from ``exc``).
+    ``prepared`` holds each partition's last prepared state (what its next commit makes
+    visible)."""
 
     name = "memory-checkpointed"
 
@@ -93,6 +95,7 @@ class MemoryCheckpointedSink(MemorySink):
         super().__init__()
         self._pending: dict[str, tuple[list[Bar], list[Reject]]] = {}
         self._failures: list[BaseException] = []
+        self.prepared: dict[str, Any] = {}
 
     def fail_next_publish(self, exc: BaseException) -> None:
         self._failures.append(exc)
@@ -109,7 +112,8 @@ class MemoryCheckpointedSink(MemorySink):
 
     async def prepare(self, stream: str, offset: int, final: bool) -> Any:
         bars, rejects = self._for(stream)
-        return {"bars": len(bars), "rejects": len(rejects)}
+        state = self.prepared[stream] = {"bars": len(bars), "rejects": len(rejects)}
+        return state
 
     async def committed(self, stream: str, state: Any) -> None:
         bars, rejects = self._for(stream)

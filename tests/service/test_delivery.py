@@ -240,6 +240,27 @@ async def test_a_failed_transaction_rewinds_and_the_output_stays_exact(
     assert "ticks[1]: failed -> live: restored from its checkpoint" in caplog.text
 
 
+async def test_a_commit_that_landed_but_failed_on_the_client_is_not_done_twice(
+    feed: list[list[Any]], caplog: pytest.LogCaptureFixture
+) -> None:
+    """A commit can time out on the client after the broker took it: the checkpoint and
+    the transaction's bars are committed, but the service saw a failure. Rewinding to the
+    checkpoint it last saw commit would build and commit that stretch again; the rewind
+    takes the stored checkpoint instead, read after its new producer fenced the old one."""
+    caplog.set_level(logging.INFO)
+    stream = "ticks[1]"
+
+    def land_then_fail(bus: Bus) -> None:
+        bus.checkpoints.fail_next(stream, KafkaTimeoutError(), landed=True)
+        bus.checkpoints.on_landed = lambda s: bus.sink.committed(s, bus.sink.prepared[s])
+
+    bus, runner, task = await mid_stream(feed, lambda bus: stream in bus.checkpoints.checkpoints, land_then_fail)
+    await asyncio.wait_for(task, timeout=30)
+    assert rows(bus.sink.bars) == expected_bars(feed)
+    assert sample(runner, "barsmith_checkpoint_restores_total", reason="rewind") == 1
+    assert f"{stream}: the commit that failed had landed" in caplog.text
+
+
 async def test_a_failed_send_rewinds_the_partition_from_where_the_checkpoint_says(
     feed: list[list[Any]], caplog: pytest.LogCaptureFixture
 ) -> None:
