@@ -58,6 +58,7 @@ def test_the_top_of_book_is_a_brute_force_rebuild_of_the_level_history(
         assert book.ask_qty == (model["asks"][best_ask] if best_ask is not None else None)
         for side, ladder in (("bids", book.bids), ("asks", book.asks)):
             assert ladder.levels() == sorted(model[side].items()) and len(ladder) == len(model[side])
+            assert all(qty > 0 for _, qty in ladder.levels())  # random deltas never leave a level <= 0
 
 
 def test_the_best_levels_and_their_sums() -> None:
