@@ -14,6 +14,7 @@ trusting the writer's encoder.
 
 from __future__ import annotations
 
+import itertools
 import math
 import struct
 import zlib
@@ -280,6 +281,62 @@ def test_generated_tables_read_back_as_pyarrow_writes_them(
                 present = sum(v is not None for v in split[g][i])
                 per_page = 8 if fields[i].kind == "bool" else 1
                 assert len(headers) == max(1, -(-present // per_page))
+
+
+def test_the_demo_feed_reads_back_as_pyarrow_writes_its_bars(tmp_path: Path) -> None:
+    """The bars of the demo feed through barsmith's Parquet sink, and the same bars written by
+    pyarrow: equal tables (pyarrow) and frames (pandas), claimed statistics."""
+    from barsmith.bars.spec import parse_specs
+    from barsmith.runner import Runner
+    from barsmith.sinks.base import MemorySink
+    from barsmith.sinks.parquet import REJECT_SCHEMA, ParquetBarSink, ParquetRejectSink, bar_schema
+    from barsmith.sources.files import FileSource
+
+    class BothRejects(ParquetRejectSink):
+        def __init__(self, directory: Path) -> None:
+            super().__init__(directory)
+            self.kept: list[Any] = []
+
+        async def write(self, rejects: Sequence[Any]) -> None:
+            self.kept.extend(rejects)
+            await super().write(rejects)
+
+    demo = Path(__file__).resolve().parents[2] / "demo_feeds" / "kestrelmoor-evening.msgpack.gz"
+    specs = parse_specs(["time:1m", "volume:5000@all", "notional:1e6"])
+    out = tmp_path / "out"
+    out.mkdir()
+    memory = MemorySink()
+    rejects = BothRejects(out)
+    runner = Runner(specs, 2_000_000_000, FileSource([demo]), [ParquetBarSink(out, specs), memory], rejects, None)
+    runner.run(event_loop=False)
+    assert len(rejects.kept) == 10
+
+    checked = [(out / "_rejects.parquet", REJECT_SCHEMA, [r.as_row() for r in rejects.kept])]
+    for spec in specs:
+        schema = bar_schema(spec.columns)
+        bars = [bar for bar in memory.bars if bar.spec == spec.text]
+        assert bars
+        names = [f.name for f in schema]
+        checked.append(
+            (out / f"{spec.file_stem}-000001.parquet", schema, [dict(zip(names, b.values, strict=True)) for b in bars])
+        )
+    for path, schema, rows in checked:
+        columns = [[row[f.name] for row in rows] for f in schema]
+        mine = pq.read_table(path)
+        reference_path = tmp_path / f"pyarrow-{path.name}"
+        reference = pa.Table.from_arrays(
+            [pa.array(col, type=ARROW_TYPES[f.kind]) for f, col in zip(schema, columns, strict=True)],
+            schema=arrow_schema(schema),
+        )
+        pq.write_table(reference, reference_path, compression="zstd")
+        assert mine.schema.equals(pq.read_table(reference_path).schema, check_metadata=True)
+        assert_same_columns(mine, schema, columns)
+        pd.testing.assert_frame_equal(pd.read_parquet(path), pd.read_parquet(reference_path), check_exact=True)
+        groups = pq.ParquetFile(path).metadata
+        bounds = [0]
+        for g in range(groups.num_row_groups):
+            bounds.append(bounds[-1] + groups.row_group(g).num_rows)
+        check_metadata(path, schema, [[col[a:b] for col in columns] for a, b in itertools.pairwise(bounds)], "zstd")
 
 
 # -- the encodings, byte for byte ---------------------------------------------------------------
