@@ -419,3 +419,34 @@ def test_unknown_codecs_and_bad_values_are_refused_clearly(tmp_path: Path) -> No
     writer.write_row_group([[5]])
     writer.close()
     assert pq.read_table(tmp_path / "y.parquet").column("a").to_pylist() == [5]
+
+
+def test_readers_prune_row_groups_by_the_statistics(tmp_path: Path) -> None:
+    """pyarrow's dataset reader skips the row groups whose statistics rule a filter out."""
+    import pyarrow.dataset as ds
+
+    fields = [Field("symbol", "string", False), Field("end", "timestamp", False), Field("px", "float64", True)]
+    path = tmp_path / "bars.parquet"
+    writer = ParquetFileWriter(path, fields)
+    for symbol, start in (("A", 0), ("B", 100), ("C", 200)):
+        writer.write_row_group([[symbol] * 3, [start, start + 1, start + 2], [1.0, math.nan, None]])
+    writer.close()
+    (fragment,) = ds.dataset(path).get_fragments()
+    # One fragment per row group the statistics cannot rule out.
+    kept = fragment.split_by_row_group(ds.field("symbol") == "B")
+    assert [f.row_groups[0].id for f in kept] == [1]
+    late = fragment.split_by_row_group(ds.field("end") >= pa.scalar(150, pa.timestamp("ns", tz="UTC")))
+    assert [f.row_groups[0].id for f in late] == [2]
+    assert [f.row_groups[0].id for f in fragment.split_by_row_group(ds.field("px") > 0.5)] == [0, 1, 2]
+    assert [f.row_groups[0].id for f in fragment.split_by_row_group(ds.field("px") > 2.0)] == []
+    frame = pd.read_parquet(path, filters=[("symbol", "==", "C")])
+    assert frame["end"].tolist() == [pd.Timestamp(v, unit="ns", tz="UTC") for v in (200, 201, 202)]
+
+
+def test_the_codecs_are_the_settings_codecs() -> None:
+    """Every compression the settings accept is written; the writer refuses any other."""
+    import typing
+
+    from barsmith.settings import ParquetSettings
+
+    assert set(typing.get_args(ParquetSettings.model_fields["compression"].annotation)) == set(CODECS)
