@@ -79,8 +79,8 @@ def test_replay_of_a_tiny_file_to_parquet_loads_only_what_it_runs(tmp_path: Path
     argv = ["replay", str(feed), "--bars", "time:1m", "--out", str(out), "--quiet"]
     code = f"from barsmith.cli import main\nassert main({argv!r}) == 0"
     loaded = _modules_after(code)
-    assert "pyarrow" in loaded  # it does write Parquet
-    assert not loaded & (_KAFKA_AND_METRICS | _SETTINGS_LIBRARY | {"pandas"})
+    assert "barsmith" in loaded and "cramjam" in loaded  # it did write (compressed) Parquet
+    assert not loaded & (_KAFKA_AND_METRICS | _SETTINGS_LIBRARY | _FRAMES)  # barsmith's own writer
     assert "asyncio" not in loaded  # files and Parquet run without an event loop
     assert len(pd.read_parquet(out)) == 1
 

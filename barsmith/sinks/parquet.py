@@ -14,71 +14,56 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any, Final
 
-import pyarrow as pa
-import pyarrow.parquet as pq
-
 from barsmith.bars.columns import Column
 from barsmith.bars.record import Bar
 from barsmith.bars.spec import DEFAULT_COLUMNS, BarSpec
 from barsmith.errors import ConfigError, SinkError
 from barsmith.ingest.rejects import REJECT_COLUMNS, Reject
-from barsmith.sinks._arrow import column_array
+from barsmith.sinks.parquet_file import Field, ParquetFileWriter, check_compression
 
-_TS: Final = pa.timestamp("ns", tz="UTC")
-# The column table's types (barsmith.bars.columns) as Arrow types; timestamps are
-# INT64 nanoseconds adjusted to UTC (Parquet format specification).
-_ARROW: Final = {
-    "string": pa.string(),
-    "timestamp": _TS,
-    "float64": pa.float64(),
-    "int64": pa.int64(),
-    "bool": pa.bool_(),
-}
+Schema = tuple[Field, ...]
+"""A Parquet file's columns, in order."""
 
 
-def bar_schema(columns: Sequence[Column]) -> pa.Schema:
-    """The Arrow schema of bars with ``columns`` (see :attr:`BarSpec.columns`)."""
-    return pa.schema([pa.field(c.name, _ARROW[c.kind], nullable=c.nullable) for c in columns])
+def bar_schema(columns: Sequence[Column]) -> Schema:
+    """The Parquet columns of bars with ``columns`` (see :attr:`BarSpec.columns`): the
+    column table's types, timestamps as ns since the epoch, adjusted to UTC (they read
+    back as ``timestamp[ns, tz=UTC]``)."""
+    return tuple(Field(c.name, c.kind, c.nullable) for c in columns)
 
 
 BAR_SCHEMA: Final = bar_schema(DEFAULT_COLUMNS)
 """The schema of bars carrying the default groups."""
 
-REJECT_SCHEMA: Final = pa.schema(
-    [
-        pa.field("source", pa.string()),
-        pa.field("position", pa.int64()),
-        pa.field("reason", pa.string()),
-        pa.field("detail", pa.string()),
-        pa.field("symbol", pa.string()),
-        pa.field("seq", pa.int64()),
-        pa.field("ts", _TS),
-        pa.field("record", pa.binary()),
-    ]
+REJECT_SCHEMA: Final = (
+    Field("source", "string", True),
+    Field("position", "int64", True),
+    Field("reason", "string", True),
+    Field("detail", "string", True),
+    Field("symbol", "string", True),
+    Field("seq", "int64", True),
+    Field("ts", "timestamp", True),
+    Field("record", "binary", True),
 )
-assert tuple(REJECT_SCHEMA.names) == REJECT_COLUMNS
+assert tuple(f.name for f in REJECT_SCHEMA) == REJECT_COLUMNS
 
 
-def bars_table(bars: Sequence[Bar], schema: pa.Schema = BAR_SCHEMA) -> pa.Table:
-    """Bars of one spec as an Arrow table with ``schema`` (the spec's)."""
-    names = tuple(schema.names)
+def _names(schema: Schema) -> tuple[str, ...]:
+    return tuple(f.name for f in schema)
+
+
+def bar_columns(bars: Sequence[Bar], schema: Schema = BAR_SCHEMA) -> list[Sequence[Any]]:
+    """Bars of one spec as columns of ``schema`` (the spec's): one sequence of values each."""
+    names = _names(schema)
     if bars and bars[0].names != names:
         raise SinkError(f"bars of {bars[0].spec} have columns {bars[0].names}, the file {names}")
-    columns = list(zip(*(bar.values for bar in bars), strict=True)) if bars else [() for _ in names]
-    return _table(columns, schema)
+    return list(zip(*(bar.values for bar in bars), strict=True)) if bars else [() for _ in names]
 
 
-def rejects_table(rejects: Sequence[Reject]) -> pa.Table:
-    """Rejected records as an Arrow table with :data:`REJECT_SCHEMA`."""
+def reject_columns(rejects: Sequence[Reject]) -> list[Sequence[Any]]:
+    """Rejected records as columns of :data:`REJECT_SCHEMA`."""
     rows = [r.as_row() for r in rejects]
-    return _table([[row[name] for row in rows] for name in REJECT_COLUMNS], REJECT_SCHEMA)
-
-
-def _table(columns: Sequence[Sequence[Any]], schema: pa.Schema) -> pa.Table:
-    # Not pyarrow.array: it would import pandas (see barsmith.sinks._arrow).
-    return pa.Table.from_arrays(
-        [column_array(col, schema.field(i).type) for i, col in enumerate(columns)], schema=schema
-    )
+    return [[row[name] for row in rows] for name in REJECT_COLUMNS]
 
 
 def prepare_output_dir(path: Path, replace: bool) -> None:
@@ -101,16 +86,19 @@ def _temp_path(final_path: Path) -> Path:
 class _RollingFile:
     """One Parquet file being written under a temporary name."""
 
-    def __init__(self, final_path: Path, schema: pa.Schema, compression: str) -> None:
+    def __init__(self, final_path: Path, schema: Schema, compression: str) -> None:
         self.final_path = final_path
         self.tmp_path = _temp_path(final_path)
-        self.writer = pq.ParquetWriter(self.tmp_path, schema, compression=compression)
-        self.rows = 0
+        self.writer = ParquetFileWriter(self.tmp_path, schema, compression)
         self.opened_at = time.monotonic()
 
-    def write(self, table: pa.Table) -> None:
-        self.writer.write_table(table)
-        self.rows += table.num_rows
+    @property
+    def rows(self) -> int:
+        return self.writer.rows
+
+    def write(self, columns: Sequence[Sequence[Any]]) -> None:
+        """One row group of ``columns``."""
+        self.writer.write_row_group(columns)
 
     def finish(self) -> None:
         """Close the file and make it durable, still under its temporary name."""
@@ -158,7 +146,7 @@ class ParquetBarSink:
         self._row_group_rows = row_group_rows
         self._max_file_rows = max_file_rows
         self._roll_interval_s = roll_interval_s
-        self._compression = compression
+        self._compression = check_compression(compression)
         self._prefix = file_prefix
         self._pending: dict[str, list[Bar]] = {text: [] for text in self._stems}
         self._open: dict[str, _RollingFile] = {}
@@ -197,7 +185,7 @@ class ParquetBarSink:
                 self._counter[text] += 1
                 name = f"{self._prefix}{self._stems[text]}-{self._counter[text]:06d}.parquet"
                 handle = self._open[text] = _RollingFile(self.directory / name, self._schemas[text], self._compression)
-            handle.write(bars_table(pending, self._schemas[text]))
+            handle.write(bar_columns(pending, self._schemas[text]))
             if handle.rows >= self._max_file_rows:
                 self._commit(text)
         except OSError as exc:
@@ -243,7 +231,7 @@ class ParquetRejectSink:
         if self._file is None:
             self._file = _RollingFile(self.path, REJECT_SCHEMA, "zstd")
         if self._pending:
-            self._file.write(rejects_table(self._pending))
+            self._file.write(reject_columns(self._pending))
             self._pending = []
 
     async def close(self) -> None:
@@ -325,7 +313,7 @@ class ParquetPartSink:
         self._schemas = {spec.text: bar_schema(spec.columns) for spec in specs}
         self._roll_interval_s = roll_interval_s
         self._carry_max_rows = carry_max_rows
-        self._compression = compression
+        self._compression = check_compression(compression)
         self._keep_rejects = keep_rejects
         self._buffers: dict[str, _PartBuffer] = {}
         self.files_written: list[Path] = []
@@ -370,11 +358,10 @@ class ParquetPartSink:
         try:
             for text, bars in self._by_spec(buffer.bars).items():
                 name = f"{self._stems[text]}-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
-                parts.append(self._write_temp(name, bars_table(bars, self._schemas[text])))
+                parts.append(self._write_temp(name, self._schemas[text], bar_columns(bars, self._schemas[text])))
             if buffer.rejects:
                 name = f"_rejects-{stream_file_tag(stream)}-{buffer.from_offset:012d}-{offset:012d}.parquet"
-                table = rejects_table(buffer.rejects)
-                parts.append(self._write_temp(name, table))
+                parts.append(self._write_temp(name, REJECT_SCHEMA, reject_columns(buffer.rejects)))
         except OSError as exc:
             raise SinkError(f"cannot write bars to {self.directory}: {exc}") from exc
         return {"from": offset, "parts": parts, "bars": [], "rejects": []}
@@ -423,7 +410,7 @@ class ParquetPartSink:
         names: dict[str, tuple[str, ...]] = {}
         for text, written in columns.items():
             wanted = self._schemas.get(text)
-            if wanted is None or tuple(written) != tuple(wanted.names):
+            if wanted is None or tuple(written) != _names(wanted):
                 raise SinkError(
                     f"the checkpoint carries bars of {text} with other columns than this spec has now; restore the old "
                     "settings, or use a new consumer group and state topic to rebuild from the input"
@@ -437,9 +424,9 @@ class ParquetPartSink:
             grouped.setdefault(bar.spec, []).append(bar)
         return grouped
 
-    def _write_temp(self, name: str, table: pa.Table) -> str:
-        handle = _RollingFile(self.directory / name, table.schema, self._compression)
-        handle.write(table)
+    def _write_temp(self, name: str, schema: Schema, columns: Sequence[Sequence[Any]]) -> str:
+        handle = _RollingFile(self.directory / name, schema, self._compression)
+        handle.write(columns)
         handle.finish()  # renamed by _publish_parts once the checkpoint naming it commits
         return name
 
