@@ -12,18 +12,22 @@ collector), so the per-tick path pays nothing for them.
 
 from __future__ import annotations
 
+import math
 import time
-from collections.abc import Callable, Iterable, Iterator, Mapping
+from bisect import bisect_left
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from typing import Any
 
 from prometheus_client import CollectorRegistry, Counter, Histogram
-from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, HistogramMetricFamily, Metric
 from prometheus_client.registry import Collector
+from prometheus_client.utils import floatToGoString
 
 from barsmith.bars.record import Bar
 from barsmith.engine import Engine, EngineStats
 from barsmith.service.partitions import PartitionState
 
+_le_label: Callable[[float], str] = floatToGoString  # a bucket's bound as the library writes it
 # Close-to-publish delays: sub-millisecond up to tens of seconds.
 _DELAY_BUCKETS = (0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0)
 _SIZE_BUCKETS = tuple(float(2**k) for k in range(10, 27, 2))  # 1 KiB .. 64 MiB
@@ -115,6 +119,48 @@ class _EngineCollector(Collector):
         yield book_gauge
 
 
+class PlainHistogram:
+    """A histogram without labels for the per-bar path: bucket counts in a list, exported
+    by a collector at scrape time (the scrape runs on the event loop, as every
+    observation does, so no lock is needed)."""
+
+    __slots__ = ("bounds", "counts", "doc", "name", "sum")
+
+    def __init__(self, name: str, doc: str, buckets: Iterable[float]) -> None:
+        self.name = name
+        self.doc = doc
+        self.bounds = tuple(sorted(float(b) for b in buckets))
+        self.counts = [0] * (len(self.bounds) + 1)  # the last one: above every bound (+Inf)
+        self.sum = 0.0
+
+    def observe(self, value: float) -> None:
+        """Count ``value`` in the first bucket whose upper bound it does not exceed."""
+        self.counts[bisect_left(self.bounds, value)] += 1
+        self.sum += value
+
+    def metric(self) -> HistogramMetricFamily:
+        """The cumulative buckets, count and sum, as the text format shows a histogram."""
+        family = HistogramMetricFamily(self.name, self.doc)
+        buckets: list[tuple[str, float]] = []
+        total = 0
+        for bound, count in zip((*self.bounds, math.inf), self.counts, strict=True):
+            total += count
+            buckets.append((_le_label(bound), total))
+        family.add_metric([], buckets, self.sum)
+        return family
+
+
+class PlainHistograms(Collector):
+    """Exports :class:`PlainHistogram` objects from a registry."""
+
+    def __init__(self, histograms: Sequence[PlainHistogram]) -> None:
+        self._histograms = tuple(histograms)
+
+    def collect(self) -> Iterator[Metric]:
+        for histogram in self._histograms:
+            yield histogram.metric()
+
+
 class ServiceMetrics:
     """The service's registry and the metrics it updates directly."""
 
@@ -131,18 +177,20 @@ class ServiceMetrics:
         self.commits = Counter(
             "barsmith_offset_commits", "Offset commits to the consumer group", registry=self.registry
         )
-        self.publish_delay = Histogram(
+        # Observed for every bar the broker acknowledges: kept as plain counts and read at
+        # scrape time (the client library's histograms cost ~2 µs an observation, under
+        # a lock; two per bar was ~5 % of the service's time at 64 ticks a record).
+        self.publish_delay = PlainHistogram(
             "barsmith_bar_publish_delay_seconds",
             "Wall time from a bar's close to the broker's acknowledgement",
-            buckets=_DELAY_BUCKETS,
-            registry=self.registry,
+            _DELAY_BUCKETS,
         )
-        self.event_to_publish = Histogram(
+        self.event_to_publish = PlainHistogram(
             "barsmith_event_to_publish_seconds",
             "Wall clock at publish minus the bar's end (event time); meaningful when event time is wall time",
-            buckets=_EVENT_BUCKETS,
-            registry=self.registry,
+            _EVENT_BUCKETS,
         )
+        self.registry.register(PlainHistograms([self.publish_delay, self.event_to_publish]))
 
         self.transactions = Counter(
             "barsmith_transactions",

@@ -38,6 +38,19 @@ def test_a_batch_is_counted_only_when_the_key_is_none_of_its_symbols() -> None:
     assert keys.counts == {"ticks[0]": 1}
 
 
+def test_a_long_batch_is_checked_to_its_last_tick() -> None:
+    keys = KeyMismatches()
+    batch = [tick("FENWORTH~KESMOOR", T0, seq) for seq in range(1, 64)] + [tick("MARROWAY~KESMOOR", T0, 1)]
+    decoded = [decode_tick(t) for t in batch]
+    keys.check("ticks[0]", 0, b"MARROWAY~KESMOOR", decoded)  # keyed by its last tick, as publish --batch does
+    keys.check("ticks[0]", 1, b"MARROWAY~KESMOOR", batch)
+    keys.check("ticks[0]", 2, b"MARROWAY~KESMOOR", [*decoded[:-1], batch[-1]])  # ticks and a map
+    assert keys.counts == {}
+    keys.check("ticks[0]", 3, b"QUILLFERN~KESMOOR", decoded)
+    keys.check("ticks[0]", 4, b"MARROWAY~KESMOOR", [[decoded[-1]]])  # a nested list has no symbol of its own
+    assert keys.counts == {"ticks[0]": 1}
+
+
 @pytest.mark.parametrize("value", [42, "text", {"ts": T0}, {"sym": 7}, [], [1, 2]])
 def test_a_value_without_a_symbol_is_left_to_the_validator(value: object) -> None:
     keys = KeyMismatches()
