@@ -72,23 +72,29 @@ class CompactWriter:
             self.out += varint(zigzag(field_id))
         self._last = field_id
 
-    def i16(self, field_id: int, value: int) -> None:
-        self._field(field_id, I16)
+    def _integer(self, field_id: int, field_type: int, value: int) -> None:
+        # i16, i32 and i64 share one encoding: a zigzag varint (only the type differs).
+        self._field(field_id, field_type)
         self.out += varint(zigzag(value))
+
+    def i16(self, field_id: int, value: int) -> None:
+        self._integer(field_id, I16, value)
 
     def i32(self, field_id: int, value: int) -> None:
-        self._field(field_id, I32)
-        self.out += varint(zigzag(value))
+        self._integer(field_id, I32, value)
 
     def i64(self, field_id: int, value: int) -> None:
-        self._field(field_id, I64)
-        self.out += varint(zigzag(value))
+        self._integer(field_id, I64, value)
 
     def boolean(self, field_id: int, value: bool) -> None:
         self._field(field_id, BOOL_TRUE if value else BOOL_FALSE)  # the value is the type
 
     def binary(self, field_id: int, value: bytes) -> None:
         self._field(field_id, BINARY)
+        self._bytes(value)
+
+    def _bytes(self, value: bytes) -> None:
+        """A binary value (a field's or a list element's): its length, then its bytes."""
         self.out += varint(len(value))
         self.out += value
 
@@ -127,9 +133,7 @@ class CompactWriter:
     def string_list(self, field_id: int, values: list[str]) -> None:
         self._list(field_id, BINARY, len(values))
         for value in values:
-            encoded = value.encode("utf-8")
-            self.out += varint(len(encoded))
-            self.out += encoded
+            self._bytes(value.encode("utf-8"))
 
     def struct_list(self, field_id: int, size: int) -> None:
         """Open a list of ``size`` structs; write each as :meth:`element` … :meth:`end`."""
