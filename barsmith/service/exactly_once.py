@@ -393,9 +393,9 @@ class ExactlyOnce:
     async def _recover(self, owners: Sequence[PartitionOwner]) -> None:
         """Bring restoring and failed partitions back to live. Their transactions open
         first, in parallel: that fences the earlier owners and aborts their open
-        transactions, so the stored checkpoints are stable when read (one read for all
-        those being assigned). A bus failure leaves a partition as it is, for
-        housekeeping to retry."""
+        transactions, so the stored checkpoints are stable when read (one read for all of
+        them; a failed partition's transaction was aborted or its producer replaced
+        before). A bus failure leaves a partition as it is, for housekeeping to retry."""
         await asyncio.gather(*(self._open_transaction(owner) for owner in owners if owner.transaction is None))
         ready = [owner for owner in owners if owner.transaction is not None]
         if not ready:
@@ -416,9 +416,9 @@ class ExactlyOnce:
                     await self._restore(owner, "assignment", group_offset)
 
     def _reconcile(self, owner: PartitionOwner, data: bytes | None) -> None:
-        """Before a rewind: the stored checkpoint, read after the new producer fenced the
-        failed one (the broker then has finished or aborted its transaction), is the last
-        committed one. A commit that failed on the client may still have landed (a timeout
+        """Before a rewind: the stored checkpoint, read after the failed transaction was
+        aborted or its producer replaced (the broker has then finished or aborted it), is
+        the last committed one. A commit that failed on the client may still have landed (a timeout
         after the broker took it); rewinding to the checkpoint before it would commit that
         stretch of bars a second time."""
         if data is not None and data != owner.checkpoint:
